@@ -1,0 +1,263 @@
+"""The lockstep engine on a tiny random-weight llama: batching, rewind, fork, recipes, stops.
+
+The outside references are transformers' own forward pass (log-probabilities from
+`model(input_ids, labels=...)`, reference: transformers 5.24.0 LlamaForCausalLM) and
+batch-1 stepping of the same model.
+"""
+
+from __future__ import annotations
+
+import threading
+
+import numpy as np
+import pytest
+import torch
+
+from tui.engine import Engine, EngineError
+from tui.forward import Runner
+from tui.record import STOP_CONTEXT, STOP_EOS, STOP_LENGTH, STOP_STRING
+from tui.scenario import PaneSpec
+
+PROMPT = "The lamplighter of Orrin Bay climbed the"
+
+
+@pytest.fixture(scope="module")
+def lm(tiny_model_dir):
+    from tui.models import load_model
+
+    return load_model(str(tiny_model_dir))
+
+
+def make(lm, recipes, *, seed=5, shared=True, max_new=30, stop=(), max_context=None,
+         seeds=None) -> Engine:
+    ids = lm.encode_prompt(PROMPT, None)
+    panes = [PaneSpec(f"p{i}", r, None if seeds is None else seeds[i])
+             for i, r in enumerate(recipes)]
+    return Engine(Runner(lm.model), lm.decode, ids, panes, seed=seed, shared_draws=shared,
+                  max_new_tokens=max_new, stop_strings=stop, eos_ids=(),
+                  max_context=max_context or lm.max_context)
+
+
+def run(engine: Engine, n: int) -> None:
+    for _ in range(n):
+        engine.step()
+
+
+def tokens(engine: Engine) -> list[list[int]]:
+    return [[r.token_id for r in p.records] for p in engine.view().panes]
+
+
+def test_same_recipe_and_shared_draws_write_the_same_text(lm):
+    # Common random numbers: equal recipes and equal u give equal draws (the engine's
+    # contract; common practice, no source).
+    e = make(lm, ["temperature=1.0", "temperature=1.0", "top_k=5"])
+    run(e, 12)
+    t = tokens(e)
+    assert t[0] == t[1]
+    assert len(t[0]) == len(t[2]) == 12
+    assert [r.u for r in e.view().panes[0].records] == [r.u for r in e.view().panes[2].records]
+
+
+def test_unshared_draws_use_one_stream_per_pane(lm):
+    e = make(lm, ["temperature=1.0", "temperature=1.0"], shared=False)
+    run(e, 8)
+    a, b = e.view().panes
+    assert [r.u for r in a.records] != [r.u for r in b.records]
+    e2 = make(lm, ["temperature=1.0", "temperature=1.0"], shared=False)
+    run(e2, 8)
+    assert tokens(e) == tokens(e2)  # same seed, same settings: identical re-run
+
+
+def test_log_probabilities_match_transformers_forward(lm):
+    # Force a fixed continuation, then compare each chosen token's raw log-probability
+    # with transformers' own forward pass over the whole text (labels = the text).
+    e = make(lm, ["greedy"])
+    prompt = list(e.prompt_ids)
+    cont = lm.tokenizer(" old iron stair to the lamp", add_special_tokens=False)["input_ids"]
+    for t, tok in enumerate(cont):
+        e.force(0, t, tok)
+        e.step()
+    recs = e.view().panes[0].records
+    assert [r.token_id for r in recs] == cont
+    assert all(r.forced for r in recs)
+    ids = torch.tensor([prompt + cont])
+    labels = ids.clone()
+    labels[0, : len(prompt)] = -100
+    with torch.no_grad():
+        out = lm.model(input_ids=ids, labels=labels)
+    ref = torch.log_softmax(out.logits[0, len(prompt) - 1 : -1].double(), -1)
+    ref_lp = ref[torch.arange(len(cont)), torch.tensor(cont)].numpy()
+    ours = np.log([r.raw_prob for r in recs])
+    np.testing.assert_allclose(ours, ref_lp, atol=1e-4)
+    assert abs(-ours.mean() - float(out.loss)) < 1e-4  # the library's mean NLL
+
+
+def test_batched_steps_give_the_logits_of_batch_one_steps(lm):
+    e = make(lm, ["temperature=1.2", "top_k=3", "greedy", "min_p=0.2"])
+    run(e, 6)
+    runner = Runner(lm.model)
+    for pane in e.view().panes:
+        for step in (0, 3, 5):
+            ours = e.logits_at(pane.id, step)  # kept from the batched step
+            ref = runner.logits_of(e.history(pane.id, step))[-1].numpy()
+            np.testing.assert_allclose(ours, ref, atol=1e-4)
+
+
+def test_rewind_replays_the_same_draws(lm):
+    e = make(lm, ["temperature=1.0", "top_p=0.8", "mirostat_tau=3.0 mirostat_eta=0.1"])
+    run(e, 10)
+    before = e.view()
+    e.rewind(4)
+    assert e.step_index == 4
+    assert all(len(p.records) == 4 for p in e.view().panes)
+    run(e, 6)
+    after = e.view()
+    for p, q in zip(before.panes, after.panes):
+        assert p.records == q.records
+
+
+def test_rewind_brings_back_a_pane_that_stopped_later(lm):
+    e = make(lm, ["temperature=1.0", "temperature=1.0"])
+    run(e, 3)
+    # Make pane 1 stop by giving it the end-of-text token.
+    eos = lm.tokenizer.eos_token_id
+    e.eos_ids = frozenset({eos})
+    e.force(1, 3, eos)
+    e.step()
+    assert e.view().panes[1].stop == STOP_EOS
+    run(e, 4)  # pane 0 goes on alone
+    assert len(e.view().panes[0].records) == 8
+    assert len(e.view().panes[1].records) == 4
+    e.rewind(2)
+    run(e, 3)
+    a, b = e.view().panes
+    assert a.records[:5] == b.records[:5]  # both live again, same recipe and draws
+
+
+def test_fork_continues_from_the_source(lm):
+    e = make(lm, ["temperature=1.0"])
+    run(e, 5)
+    same = e.fork(0, "temperature=1.0")
+    other = e.fork(0, "greedy")
+    run(e, 7)
+    v = {p.id: p for p in e.view().panes}
+    assert [r.token_id for r in v[same].records] == [r.token_id for r in v[0].records]
+    assert [r.token_id for r in v[other].records[:5]] == [r.token_id for r in v[0].records[:5]]
+    assert all(r.rank == 1 for r in v[other].records[5:])  # greedy from the fork on
+    assert v[other].origin == (0, 5)
+
+
+def test_recipe_change_takes_effect_from_the_next_step(lm):
+    e = make(lm, ["temperature=1.5"])
+    run(e, 3)
+    e.set_recipe(0, "greedy")
+    run(e, 5)
+    recs = e.view().panes[0].records
+    assert all(r.rank == 1 and r.kept == 1 for r in recs[3:])
+    assert e.view().panes[0].recipe_log == ((0, "temperature=1.5"), (3, "greedy"))
+
+
+def test_add_pane_catches_up_as_if_present_from_the_start(lm):
+    e = make(lm, ["temperature=1.0"])
+    run(e, 6)
+    new = e.add_pane("top_k=4", name="late")
+    run(e, 3)
+    ref = make(lm, ["temperature=1.0", "top_k=4"])
+    run(ref, 9)
+    got = {p.name: [r.token_id for r in p.records] for p in e.view().panes}
+    want = tokens(ref)
+    assert got["p0"] == want[0]
+    assert got["late"] == want[1]
+    e.remove_pane(new)
+    assert [p.name for p in e.view().panes] == ["p0"]
+    with pytest.raises(EngineError):
+        e.remove_pane(0)
+
+
+def test_force_rewinds_and_others_write_the_same_again(lm):
+    e = make(lm, ["temperature=1.0", "top_p=0.9", "greedy"])
+    run(e, 10)
+    before = e.view()
+    forced = (before.panes[0].records[4].token_id + 1) % lm.tokenizer.vocab_size
+    e.force(0, 4, forced)
+    run(e, 6)
+    after = e.view()
+    rec = after.panes[0].records[4]
+    assert rec.token_id == forced and rec.forced
+    for p, q in zip(before.panes[1:], after.panes[1:]):
+        assert p.records == q.records
+
+
+def test_stop_rules(lm):
+    e = make(lm, ["greedy"], max_new=4)
+    run(e, 10)
+    assert e.view().panes[0].stop == STOP_LENGTH
+    assert len(e.view().panes[0].records) == 4
+    assert e.step() == []
+
+    probe = make(lm, ["greedy"])
+    run(probe, 6)
+    text = probe.view().panes[0].text
+    piece = next(r.text for r in probe.view().panes[0].records[2:] if r.text.strip())
+    e = make(lm, ["greedy", "greedy"], stop=(piece.strip(),))
+    run(e, 10)
+    p = e.view().panes[0]
+    assert p.stop == STOP_STRING and piece.strip() in p.text
+    assert p.text == text[: len(p.text)]
+
+    n_prompt = len(lm.encode_prompt(PROMPT, None))
+    e = make(lm, ["greedy"], max_context=n_prompt + 3)
+    run(e, 10)
+    assert e.view().panes[0].stop == STOP_CONTEXT
+    assert len(e.view().panes[0].records) == 3
+
+
+def test_restart_with_a_new_seed(lm):
+    e = make(lm, ["temperature=1.0"])
+    run(e, 8)
+    first = tokens(e)
+    e.restart(99)
+    assert e.step_index == 0
+    run(e, 8)
+    e.restart(5)
+    run(e, 8)
+    assert tokens(e) == first
+
+
+def test_records_hold_consistent_numbers(lm):
+    e = make(lm, ["top_k=3 temperature=0.9"])
+    run(e, 5)
+    for r in e.view().panes[0].records:
+        assert 1 <= r.kept <= 3
+        assert r.rank <= 3  # top_k=3 keeps the three most likely raw tokens
+        assert 0 < r.final_prob <= 1 and 0 < r.raw_prob <= 1
+        assert len(r.top) == 20
+        assert r.top[0].raw_prob >= r.top[-1].raw_prob
+        assert sum(t.final_prob for t in r.top) == pytest.approx(1.0, abs=1e-9)
+        assert r.final_entropy <= np.log(3) + 1e-9
+        assert r.raw_entropy > r.final_entropy  # truncation removes mass from a random model
+
+
+def test_one_stepping_thread_and_many_readers(lm):
+    e = make(lm, ["temperature=1.0", "top_k=5", "greedy"], max_new=25)
+    errors: list[BaseException] = []
+    done = threading.Event()
+
+    def reader() -> None:
+        try:
+            while not done.is_set():
+                v = e.view()
+                lengths = {len(p.records) for p in v.panes if p.stop is None}
+                assert len(lengths) <= 1  # lockstep: every live pane holds as many tokens
+        except BaseException as exc:  # pragma: no cover - reported below
+            errors.append(exc)
+
+    threads = [threading.Thread(target=reader) for _ in range(3)]
+    for t in threads:
+        t.start()
+    run(e, 25)
+    done.set()
+    for t in threads:
+        t.join()
+    assert not errors
+    assert all(len(p.records) == 25 for p in e.view().panes)

@@ -1,0 +1,44 @@
+"""The engine, recipes, metrics and transcript code import neither Textual nor Rich.
+
+Checked in a fresh interpreter, since this test process has imported the app already.
+"""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+
+CORE_MODULES = [
+    "tui.decoding", "tui.engine", "tui.forward", "tui.record", "tui.scenario",
+    "tui.session", "tui.transcript", "tui.models", "tui.metrics", "tui.pareto",
+    "tui.sweep_spec",
+]
+
+
+def test_core_modules_import_no_textual_or_rich():
+    code = (
+        "import importlib, json, sys\n"
+        f"mods = {CORE_MODULES!r}\n"
+        "found = []\n"
+        "for m in mods:\n"
+        "    try:\n"
+        "        importlib.import_module(m)\n"
+        "        found.append(m)\n"
+        "    except ModuleNotFoundError as exc:\n"
+        "        if exc.name != m: raise\n"
+        "bad = sorted(k for k in sys.modules if k.split('.')[0] in ('textual', 'rich'))\n"
+        "print(json.dumps({'found': found, 'bad': bad}))\n"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    result = json.loads(out.stdout)
+    assert {"tui.decoding", "tui.engine", "tui.transcript"} <= set(result["found"])
+    assert result["bad"] == []
+
+
+def test_the_recipe_command_does_not_load_torch():
+    code = ("import sys\nfrom tui.cli import main\n"
+            "rc = main(['recipe', 'check', 'top_p=0.9'])\n"
+            "print('torch' in sys.modules, rc)\n")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    assert out.stdout.strip().splitlines()[-1] == "False 0"

@@ -1,0 +1,79 @@
+"""Scenario files: the shipped ones parse; each mistake is one `FILE: FIELD: reason` line."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+from tui.errors import UserError
+from tui.scenario import find_scenario, load_scenario, scenarios_dir
+
+GOOD = """
+title = "Test"
+prompt = "Once"
+[[pane]]
+name = "a"
+recipe = "top_p=0.9"
+"""
+
+
+def write(tmp_path: Path, text: str) -> Path:
+    path = tmp_path / "s.toml"
+    path.write_text(text, encoding="utf-8")
+    return path
+
+
+def test_shipped_scenarios_parse():
+    paths = [p for p in scenarios_dir().glob("*.toml") if not p.stem.startswith("sweep")]
+    assert len(paths) >= 3
+    for path in paths:
+        sc = load_scenario(path)
+        assert 1 <= len(sc.panes) <= 8
+        assert sc.prompt or sc.messages
+
+
+def test_default_scenario_is_found_by_name():
+    assert find_scenario(None).stem == "harbour-town"
+
+
+@pytest.mark.parametrize("text, field, reason", [
+    (GOOD.replace('title = "Test"', ""), "title", "missing"),
+    (GOOD.replace("top_p=0.9", "top_p=1.5"), "pane[1].recipe", "top_p must be in (0, 1]"),
+    (GOOD + "colour = 3\n", "colour", "unknown field"),
+    (GOOD.replace('prompt = "Once"', ""), "prompt", "exactly one of"),
+    (GOOD + "max_new_tokens = 0\n", "max_new_tokens", "integer in [1, 4096]"),
+    (GOOD + "seed = -1\n", "seed", "integer in"),
+    (GOOD + "shared_draws = 1\n", "shared_draws", "true or false"),
+    (GOOD + "stop = [\"\"]\n", "stop", "non-empty strings"),
+    (GOOD + '[[pane]]\nname = "b"\nrecipe = "greedy"\nwidth = 3\n', "pane[2].width", "unknown"),
+    ('title = "T"\nprompt = "x"\n', "pane", "at least one"),
+    ('title = "T"\n[[message]]\nrole = "robot"\ncontent = "hi"\n[[pane]]\nname = "a"\n'
+     'recipe = "greedy"\n', "message[1].role", "must be one of"),
+])
+def test_bad_fields_are_named(tmp_path, text, field, reason):
+    path = write(tmp_path, text)
+    with pytest.raises(UserError) as info:
+        load_scenario(path)
+    msg = str(info.value)
+    assert msg.startswith(f"{path}: {field}: "), msg
+    assert reason in msg
+
+
+def test_toml_syntax_error_is_one_line(tmp_path):
+    path = write(tmp_path, "title = \n")
+    with pytest.raises(UserError) as info:
+        load_scenario(path)
+    assert str(info.value).startswith(f"{path}: not valid TOML")
+
+
+def test_bad_scenario_on_the_command_line_exits_2_without_traceback(tmp_path):
+    path = write(tmp_path, GOOD.replace("top_p=0.9", "top_q=0.9"))
+    out = subprocess.run([sys.executable, "-m", "tui", "run", str(path)],
+                         capture_output=True, text=True)
+    assert out.returncode == 2
+    lines = out.stderr.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith(f"error: {path}: pane[1].recipe: ")
+    assert "Traceback" not in out.stderr

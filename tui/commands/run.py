@@ -1,0 +1,72 @@
+"""`logitfork run SCENARIO`: decode a scenario without screens and write its transcript."""
+
+from __future__ import annotations
+
+import argparse
+import statistics
+import sys
+import time
+
+
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    p.add_argument("scenario", nargs="?", default=None,
+                   help="a scenario file, or the name of a shipped one (default: harbour-town)")
+    p.add_argument("--steps", type=int, default=None, metavar="N",
+                   help="stop after N steps (default: the scenario's max_new_tokens)")
+    p.add_argument("--out", default=None, metavar="FILE.jsonl|-",
+                   help="write the transcript here ('-' for standard output)")
+    p.add_argument("--model", default=None, help="a catalogue name, a local folder or a .gguf")
+    p.add_argument("--seed", type=int, default=None, help="override the scenario's seed")
+    p.add_argument("--dtype", choices=("float32", "bfloat16"), default="float32")
+    p.add_argument("--allow-pickle", action="store_true",
+                   help="allow pickled (.bin/.pt) weights; only for files you trust")
+
+
+def main(args: argparse.Namespace) -> int:
+    from tui.errors import UserError
+    from tui.scenario import find_scenario, load_scenario
+
+    scenario = load_scenario(find_scenario(args.scenario))  # check the file before loading
+    if args.steps is not None and args.steps < 1:
+        raise UserError(f"--steps: must be at least 1, got {args.steps}")
+    if args.seed is not None and args.seed < 0:
+        raise UserError(f"--seed: must be >= 0, got {args.seed}")
+
+    from tui.models import DEFAULT_MODEL, load_model
+    from tui.session import open_session
+    from tui import transcript
+
+    model_name = args.model or scenario.model or DEFAULT_MODEL
+    lm = load_model(model_name, dtype=args.dtype, allow_pickle=args.allow_pickle)
+    engine, info = open_session(lm, scenario, seed=args.seed)
+    steps = min(args.steps or scenario.max_new_tokens, scenario.max_new_tokens)
+    times: list[float] = []
+    tokens = 0
+    for i in range(steps):
+        start = time.perf_counter()
+        out = engine.step()
+        if not out:
+            break
+        times.append(time.perf_counter() - start)
+        tokens += len(out)
+        print(f"\rstep {i + 1}/{steps}  panes live {len(out)}", end="", file=sys.stderr, flush=True)
+    print(file=sys.stderr)
+
+    view = engine.view()
+    if args.out:
+        text_lines = transcript.lines(view, info, engine.prompt_ids)
+        if args.out == "-":
+            transcript.write_stream(sys.stdout, text_lines)
+        else:
+            transcript.write_atomic(args.out, text_lines)
+            print(f"transcript: {args.out}", file=sys.stderr)
+    out_fh = sys.stderr if args.out == "-" else sys.stdout
+    for pane in view.panes:
+        stop = f" [{pane.stop}]" if pane.stop else ""
+        print(f"== {pane.name}: {pane.recipe}{stop}", file=out_fh)
+        print(pane.text, file=out_fh)
+    median_ms = statistics.median(times) * 1000 if times else 0.0
+    rate = tokens / sum(times) if times else 0.0
+    print(f"summary: panes={len(view.panes)} steps={len(times)} "
+          f"step_ms_median={median_ms:.1f} tokens_per_s={rate:.1f}", file=sys.stderr)
+    return 0
