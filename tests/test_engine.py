@@ -104,7 +104,7 @@ def test_batched_steps_give_the_logits_of_batch_one_steps(lm):
 
 
 def test_rewind_replays_the_same_draws(lm):
-    e = make(lm, ["temperature=1.0", "top_p=0.8", "mirostat_tau=3.0 mirostat_eta=0.1"])
+    e = make(lm, ["temperature=1.0", "top_p=0.8", "mirostat(tau=3,eta=0.1)"])
     run(e, 10)
     before = e.view()
     e.rewind(4)
@@ -131,7 +131,8 @@ def test_rewind_brings_back_a_pane_that_stopped_later(lm):
     e.rewind(2)
     run(e, 3)
     a, b = e.view().panes
-    assert a.records[:5] == b.records[:5]  # both live again, same recipe and draws
+    assert len(a.records) == len(b.records) == 5  # both live again
+    assert [r.token_id for r in a.records] == [r.token_id for r in b.records]
 
 
 def test_fork_continues_from_the_source(lm):

@@ -20,6 +20,11 @@ recipe = "top_p=0.9"
 """
 
 
+def top(extra: str) -> str:
+    """GOOD with `extra` among the top-level fields (before the first table)."""
+    return GOOD.replace('prompt = "Once"', 'prompt = "Once"\n' + extra)
+
+
 def write(tmp_path: Path, text: str) -> Path:
     path = tmp_path / "s.toml"
     path.write_text(text, encoding="utf-8")
@@ -42,12 +47,12 @@ def test_default_scenario_is_found_by_name():
 @pytest.mark.parametrize("text, field, reason", [
     (GOOD.replace('title = "Test"', ""), "title", "missing"),
     (GOOD.replace("top_p=0.9", "top_p=1.5"), "pane[1].recipe", "top_p must be in (0, 1]"),
-    (GOOD + "colour = 3\n", "colour", "unknown field"),
+    (top("colour = 3\n"), "colour", "unknown field"),
     (GOOD.replace('prompt = "Once"', ""), "prompt", "exactly one of"),
-    (GOOD + "max_new_tokens = 0\n", "max_new_tokens", "integer in [1, 4096]"),
-    (GOOD + "seed = -1\n", "seed", "integer in"),
-    (GOOD + "shared_draws = 1\n", "shared_draws", "true or false"),
-    (GOOD + "stop = [\"\"]\n", "stop", "non-empty strings"),
+    (top("max_new_tokens = 0\n"), "max_new_tokens", "integer in [1, 4096]"),
+    (top("seed = -1\n"), "seed", "integer in"),
+    (top("shared_draws = 1\n"), "shared_draws", "true or false"),
+    (top("stop = [\"\"]\n"), "stop", "non-empty strings"),
     (GOOD + '[[pane]]\nname = "b"\nrecipe = "greedy"\nwidth = 3\n', "pane[2].width", "unknown"),
     ('title = "T"\nprompt = "x"\n', "pane", "at least one"),
     ('title = "T"\n[[message]]\nrole = "robot"\ncontent = "hi"\n[[pane]]\nname = "a"\n'

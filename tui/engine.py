@@ -25,7 +25,7 @@ from typing import Callable, Sequence
 import numpy as np
 import torch
 
-from tui.decoding import Recipe, Sampler, draw
+from tui.decoding import Recipe, Sampler, StageResult, draw
 from tui.forward import KV, Runner
 from tui.record import (STOP_CONTEXT, STOP_EOS, STOP_LENGTH, STOP_STRING, TOP_N,
                         IncrementalDecoder, StepRecord, TopToken)
@@ -207,7 +207,8 @@ class Engine:
                 token = pane.forced_next if pane.forced_next is not None else draw(final, u)
                 forced = pane.forced_next is not None
                 pane.forced_next = None
-                pane.sampler.observe(token, final)
+                # A forced token may lie outside the kept set: the state still learns of it.
+                pane.sampler.observe(token, None if forced else final)
                 rec = self._record(pane, t, token, u, forced, final, logp[row], raw[row],
                                    float(raw_entropy[row]), top_ids[row].tolist())
                 pane.records.append(rec)
@@ -405,6 +406,17 @@ class Engine:
         """Takes effect from the next step on (the uniform numbers already drawn stay)."""
         with self._lock:
             self.shared_draws = shared
+
+    # ----- for the inspect view (added by the app's engineer) --------------------------
+
+    def trace_at(self, pane_id: int, step: int) -> list[StageResult]:
+        """The pane's recipe stage by stage at `step`, from the sampler state it had then."""
+        with self._lock:
+            pane = self.pane(pane_id)
+            if not 0 <= step < len(pane.samplers):
+                raise EngineError(f"pane {pane.name!r} has no step {step}")
+            logits = self.logits_at(pane_id, step)
+            return pane.samplers[step].trace(logits, self.history(pane_id, step))
 
     # ----- helpers --------------------------------------------------------------------
 
