@@ -262,3 +262,40 @@ def test_one_stepping_thread_and_many_readers(lm):
         t.join()
     assert not errors
     assert all(len(p.records) == 25 for p in e.view().panes)
+
+
+def test_rewind_after_a_recipe_change_decodes_with_the_new_recipe(lm):
+    e = make(lm, ["temperature=1.5"])
+    run(e, 6)
+    e.set_recipe(0, "greedy")
+    e.rewind(2)
+    run(e, 4)
+    recs = e.view().panes[0].records
+    assert all(r.rank == 1 and r.kept == 1 for r in recs[2:])
+    assert e.view().panes[0].recipe_log == ((0, "temperature=1.5"), (2, "greedy"))
+
+
+def test_rewind_before_a_fork_moves_its_origin(lm):
+    e = make(lm, ["temperature=1.0"])
+    run(e, 5)
+    fork = e.fork(0, "greedy")
+    run(e, 3)
+    e.rewind(3)
+    assert e.view().panes[1].origin == (0, 3)
+    run(e, 2)
+    assert all(r.rank == 1 for r in e.view().panes[1].records[3:])
+
+
+def test_shared_draws_toggle_applies_from_the_next_step_and_survives_rewind(lm):
+    e = make(lm, ["temperature=1.0", "temperature=1.0"])
+    run(e, 4)
+    e.set_shared_draws(False)
+    run(e, 4)
+    a, b = e.view().panes
+    assert [r.u for r in a.records[:4]] == [r.u for r in b.records[:4]]
+    assert all(x.u != y.u for x, y in zip(a.records[4:], b.records[4:]))
+    assert e.view().draw_log == ((0, True), (4, False))
+    before = e.view()
+    e.rewind(6)
+    run(e, 2)
+    assert [p.records for p in e.view().panes] == [p.records for p in before.panes]

@@ -12,7 +12,10 @@ import sys
 CORE_MODULES = [
     "tui.decoding", "tui.engine", "tui.forward", "tui.record", "tui.scenario",
     "tui.session", "tui.transcript", "tui.models", "tui.metrics", "tui.pareto",
-    "tui.sweep_spec",
+    "tui.sweep_spec", "tui.views", "tui.transcript_reader", "tui.transcript_schema",
+    "tui.recovery", "tui.recovery_reader", "tui.report", "tui.report_html", "tui.report_md",
+    "tui.rerun", "tui.token_style", "tui.bootstrap", "tui.sweep_runner", "tui.lean_llama",
+    "tui.model_cache", "tui.model_sources",
 ]
 
 

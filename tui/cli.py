@@ -22,6 +22,12 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "run": ("run", "run a scenario without screens and write a transcript"),
     "models": ("models", "list the model catalogue and what loads offline"),
     "recipe": ("recipe", "check a recipe text and print its canonical form"),
+    "report": ("report", "write an HTML or Markdown report of a transcript"),
+    "rerun": ("rerun", "decode a transcript's session again and compare token by token"),
+    "recover": ("recover", "list crash-recovery logs, or turn one into a transcript"),
+    "sweep": ("sweep", "draw many samples per recipe, measure them and find the trade-off front"),
+    "sweep-merge": ("sweep_merge", "join the shard folders of one sweep into its result tables"),
+    "export": ("export", "write a recipe as a transformers GenerationConfig or Python snippet"),
 }
 
 

@@ -16,11 +16,10 @@ Threads: one thread steps; any number may read. Every mutation holds `self._lock
 
 from __future__ import annotations
 
-import math
 import threading
 from collections import OrderedDict
 from dataclasses import dataclass, field, replace
-from typing import Callable, Sequence
+from typing import Callable, Sequence, TypeVar
 
 import numpy as np
 import torch
@@ -30,13 +29,13 @@ from tui.forward import KV, Runner
 from tui.record import (STOP_CONTEXT, STOP_EOS, STOP_LENGTH, STOP_STRING, TOP_N,
                         IncrementalDecoder, StepRecord, TopToken)
 from tui.scenario import MAX_PANES, PaneSpec
+from tui.views import EngineError, PaneView, SessionView, mean_logprob
 
+__all__ = ["Engine", "EngineError", "PaneView", "SessionView", "mean_logprob"]
+
+T = TypeVar("T")
 DecodeFn = Callable[[Sequence[int]], str]
 LOGITS_KEPT = 48  # recent steps whose logits stay in memory, per pane (196 KB each at V=49152)
-
-
-class EngineError(Exception):
-    """An operation that cannot be done in the session's present state (told to the user)."""
 
 
 @dataclass
@@ -50,7 +49,7 @@ class Pane:
     seed: int | None
     stream: int  # which draw stream this pane reads when draws are not shared
     records: list[StepRecord] = field(default_factory=list)
-    samplers: list[Sampler] = field(default_factory=list)  # state before each step, for rewind
+    samplers: list[tuple[Recipe, Sampler]] = field(default_factory=list)  # before each step
     forced_next: int | None = None
     decoder: IncrementalDecoder | None = None  # rebuilt lazily after a rewind
     recipe_log: list[tuple[int, str]] = field(default_factory=list)  # (from step, recipe)
@@ -63,36 +62,6 @@ class Pane:
     @property
     def stop(self) -> str | None:
         return self.records[-1].stop if self.records else None
-
-
-@dataclass(frozen=True)
-class PaneView:
-    """A snapshot of one pane, safe to hand to another thread."""
-
-    id: int
-    name: str
-    recipe: str
-    seed: int | None
-    records: tuple[StepRecord, ...]
-    stop: str | None
-    recipe_log: tuple[tuple[int, str], ...] = ()
-    origin: tuple[int, int] | None = None
-
-    @property
-    def text(self) -> str:
-        return "".join(r.text for r in self.records)
-
-
-@dataclass(frozen=True)
-class SessionView:
-    step: int
-    seed: int
-    shared_draws: bool
-    panes: tuple[PaneView, ...]
-
-    @property
-    def finished(self) -> bool:
-        return all(p.stop is not None for p in self.panes)
 
 
 class Engine:
@@ -114,6 +83,7 @@ class Engine:
         self.prompt_ids: tuple[int, ...] = tuple(prompt_ids)
         self.seed = seed
         self.shared_draws = shared_draws
+        self._draw_log: list[tuple[int, bool]] = [(0, shared_draws)]  # (from step, shared)
         self.max_new_tokens = max_new_tokens
         self.stop_strings = tuple(stop_strings)
         self.eos_ids = frozenset(eos_ids)
@@ -145,7 +115,8 @@ class Engine:
         with self._lock:
             panes = tuple(PaneView(p.id, p.name, str(p.recipe), p.seed, tuple(p.records), p.stop,
                                    tuple(p.recipe_log), p.origin) for p in self._panes)
-            return SessionView(self.step_index, self.seed, self.shared_draws, panes)
+            return SessionView(self.step_index, self.seed, self.shared_draws, panes,
+                               tuple(self._draw_log))
 
     def pane(self, pane_id: int) -> Pane:
         for p in self._panes:
@@ -173,7 +144,8 @@ class Engine:
     def u_at(self, pane_id: int, step: int) -> float:
         """The uniform number a pane draws with at a step (a pure function of the seed)."""
         pane = self.pane(pane_id)
-        if self.shared_draws:
+        shared = next(s for start, s in reversed(self._draw_log) if start <= step)
+        if shared:
             key: tuple[int, ...] = (0, step)
             entropy = self.seed
         elif pane.seed is not None:
@@ -201,7 +173,7 @@ class Engine:
             for row, pane_id in enumerate(self._live):
                 pane = self.pane(pane_id)
                 history = self.prompt_ids + tuple(pane.tokens)
-                pane.samplers.append(pane.sampler.copy())
+                pane.samplers.append((pane.recipe, pane.sampler.copy()))
                 final = pane.sampler.distribution(logits_np[row], history)
                 u = self.u_at(pane_id, t)
                 token = pane.forced_next if pane.forced_next is not None else draw(final, u)
@@ -274,7 +246,11 @@ class Engine:
             for pane in self._panes:
                 if len(pane.records) > step or (len(pane.records) == step and pane.stop is None):
                     if len(pane.records) > step:
-                        pane.sampler = pane.samplers[step]
+                        recipe, sampler = pane.samplers[step]
+                        # A recipe changed since that step applies from `step` now, afresh.
+                        pane.sampler = sampler if recipe == pane.recipe else pane.recipe.sampler()
+                    if pane.origin is not None and pane.origin[1] > step:
+                        pane.origin = (pane.origin[0], step)
                     del pane.records[step:]
                     del pane.samplers[step:]
                     pane.forced_next = None
@@ -283,6 +259,7 @@ class Engine:
                     live.append(pane.id)
                 else:
                     self._parked[pane.id] = rows[pane.id]  # stopped before `step`: stays stopped
+            self._draw_log = _clamp_log(self._draw_log, step)
             for key in [k for k in self._logits if k[1] > step]:
                 del self._logits[key]
             self._rebuild(live, {pid: rows[pid] for pid in live}, step)
@@ -317,7 +294,7 @@ class Engine:
             pane.origin = (pane_id, step)
             pane.recipe_log = [(s, r) for s, r in source.recipe_log] + [(step, str(recipe))]
             pane.records = [replace(r, pane=pane.id) for r in source.records]
-            pane.samplers = [s.copy() for s in source.samplers]
+            pane.samplers = [(r, s.copy()) for r, s in source.samplers]
             self._panes.append(pane)
             row = self._live.index(pane_id)
             self._kv = KV.join([self._kv, self._kv.select([row])])
@@ -398,6 +375,7 @@ class Engine:
         with self._lock:
             self.rewind(0)
             self.seed = seed
+            self._draw_log = [(0, self.shared_draws)]
             for pane in self._panes:
                 pane.sampler = pane.recipe.sampler()
             self._logits.clear()
@@ -406,6 +384,8 @@ class Engine:
         """Takes effect from the next step on (the uniform numbers already drawn stay)."""
         with self._lock:
             self.shared_draws = shared
+            step = self.step_index
+            self._draw_log = [e for e in self._draw_log if e[0] < step] + [(step, shared)]
 
     # ----- for the inspect view (added by the app's engineer) --------------------------
 
@@ -458,16 +438,9 @@ class Engine:
             self._logits.popitem(last=False)
 
 
-def _clamp_log(log: list[tuple[int, str]], step: int) -> list[tuple[int, str]]:
-    """Recipe changes made after `step` now take effect at `step` (the latest one wins)."""
-    out: dict[int, str] = {}
+def _clamp_log(log: list[tuple[int, T]], step: int) -> list[tuple[int, T]]:
+    """Changes made after `step` now take effect at `step` (the latest one wins)."""
+    out: dict[int, T] = {}
     for s, r in log:
         out[min(s, step)] = r
     return sorted(out.items())
-
-
-def mean_logprob(records: Sequence[StepRecord]) -> float:
-    """Mean natural-log raw probability of the chosen tokens (nan for no tokens)."""
-    if not records:
-        return math.nan
-    return sum(r.logprob for r in records) / len(records)

@@ -9,6 +9,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
+from tui.decoding.allocator import retain_freed_memory
 from tui.engine import Engine
 from tui.forward import Runner
 from tui.scenario import Scenario
@@ -30,6 +31,7 @@ class SessionInfo:
 def open_session(lm: "LoadedModel", scenario: Scenario, *, seed: int | None = None,
                  max_new_tokens: int | None = None) -> tuple[Engine, SessionInfo]:
     """Encode the scenario's prompt, prefill it once and return a ready engine."""
+    retain_freed_memory()  # per-step (V,) vectors then reuse pages instead of faulting
     prompt_ids = lm.encode_prompt(scenario.prompt, scenario.message_dicts)
     engine = Engine(
         Runner(lm.model), lm.decode, prompt_ids, scenario.panes,

@@ -17,7 +17,7 @@ from __future__ import annotations
 import json
 import os
 import tempfile
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from datetime import datetime, timezone
 from importlib import metadata
 from pathlib import Path
@@ -37,12 +37,14 @@ _PACKAGES = ("logitfork", "torch", "transformers", "numpy", "tokenizers", "textu
 
 def package_versions() -> dict[str, str]:
     """Installed versions of the packages that decide what a session decodes."""
+    from tui import __version__
+
     out = {}
     for name in _PACKAGES:
         try:
             out[name] = metadata.version(name)
-        except metadata.PackageNotFoundError:
-            out[name] = "absent"
+        except metadata.PackageNotFoundError:  # logitfork run from a source tree
+            out[name] = __version__ if name == "logitfork" else "absent"
     return out
 
 
@@ -62,6 +64,16 @@ class PaneHeader:
         return {"id": self.id, "name": self.name, "recipe": self.recipe, "seed": self.seed,
                 "recipe_log": [[s, r] for s, r in self.recipe_log],
                 "origin": list(self.origin) if self.origin else None, "stop": self.stop}
+
+    def rewound(self, step: int) -> "PaneHeader":
+        """The entry after a rewind to `step`: later recipe changes take effect at `step`.
+
+        The same rule as the engine's rewind (the latest change wins).
+        """
+        log: dict[int, str] = {}
+        for s, r in self.recipe_log:
+            log[min(s, step)] = r
+        return replace(self, recipe_log=tuple(sorted(log.items())))
 
     @classmethod
     def of(cls, pane: "PaneView") -> "PaneHeader":
@@ -88,6 +100,7 @@ class TranscriptHeader:
     shared_draws: bool
     panes: tuple[PaneHeader, ...]
     versions: dict[str, str] = field(default_factory=dict)
+    draw_log: tuple[tuple[int, bool], ...] = ()  # (from step, shared); () = never changed
     extra: dict[str, Any] = field(default_factory=dict)
 
     def pane(self, pane_id: int) -> PaneHeader:
@@ -109,6 +122,7 @@ class TranscriptHeader:
             "seed": self.seed, "shared_draws": self.shared_draws,
             "panes": [p.to_json() for p in self.panes],
             "versions": dict(self.versions),
+            **({"draw_log": [list(e) for e in self.draw_log]} if self.draw_log else {}),
             **self.extra,
         }
 
@@ -127,7 +141,8 @@ def header_of(view: "SessionView", info: "SessionInfo",
         messages=tuple(sc.messages) if sc.messages else None,
         prompt_ids=tuple(int(i) for i in prompt_ids), max_new_tokens=sc.max_new_tokens,
         stop=tuple(sc.stop), seed=view.seed, shared_draws=view.shared_draws,
-        panes=tuple(PaneHeader.of(p) for p in view.panes), versions=package_versions())
+        panes=tuple(PaneHeader.of(p) for p in view.panes), versions=package_versions(),
+        draw_log=view.draw_log if len(view.draw_log) > 1 else ())
 
 
 def header(view: "SessionView", info: "SessionInfo", prompt_ids: Iterable[int]) -> dict[str, Any]:
@@ -176,6 +191,7 @@ def write_atomic(path: str | os.PathLike[str], text_lines: Iterable[str]) -> Pat
                 fh.write(line)
                 fh.write("\n")
             fh.flush()
+            os.fchmod(fh.fileno(), _mode_for(path))
             os.fsync(fh.fileno())
         os.replace(tmp, path)
     except BaseException:
@@ -183,6 +199,19 @@ def write_atomic(path: str | os.PathLike[str], text_lines: Iterable[str]) -> Pat
         raise
     _fsync_folder(folder)
     return path
+
+
+def _mode_for(path: Path) -> int:
+    """The file's present mode if it exists, else what `open` would give (0o666 - umask).
+
+    mkstemp creates 0o600 files; a saved transcript should get the usual mode.
+    """
+    try:
+        return path.stat().st_mode & 0o7777
+    except OSError:
+        mask = os.umask(0o022)  # read the umask (the only portable way), then put it back
+        os.umask(mask)
+        return 0o666 & ~mask
 
 
 def _fsync_folder(folder: Path) -> None:

@@ -49,8 +49,11 @@ def main(args: argparse.Namespace) -> int:
             break
         times.append(time.perf_counter() - start)
         tokens += len(out)
-        print(f"\rstep {i + 1}/{steps}  panes live {len(out)}", end="", file=sys.stderr, flush=True)
-    print(file=sys.stderr)
+        if sys.stderr.isatty():
+            print(f"\rstep {i + 1}/{steps}  panes live {len(out)}", end="", file=sys.stderr,
+                  flush=True)
+    if sys.stderr.isatty():
+        print(file=sys.stderr)
 
     view = engine.view()
     if args.out:
@@ -58,7 +61,11 @@ def main(args: argparse.Namespace) -> int:
         if args.out == "-":
             transcript.write_stream(sys.stdout, text_lines)
         else:
-            transcript.write_atomic(args.out, text_lines)
+            try:
+                transcript.write_atomic(args.out, text_lines)
+            except OSError as exc:
+                raise UserError(f"{args.out}: cannot write the transcript: "
+                                f"{exc.strerror or exc}") from None
             print(f"transcript: {args.out}", file=sys.stderr)
     out_fh = sys.stderr if args.out == "-" else sys.stdout
     for pane in view.panes:

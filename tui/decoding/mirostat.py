@@ -1,0 +1,81 @@
+"""Mirostat v2: a feedback loop that steers the surprise of drawn tokens toward a target.
+
+Basu et al. 2021 ("Mirostat: a neural text decoding algorithm that directly
+controls perplexity", ICLR) keep a maximum surprise mu, start it at 2 * tau, and
+after each drawn token X update ``mu <- mu - eta * (S(X) - tau)`` with the surprise
+``S(X) = -log2 p(X)`` in bits. Version 2 replaces the paper's Zipf estimate and
+top-k by a direct cut: keep the tokens whose surprise is at most mu. It is the
+form in common use (llama.cpp, Ollama; defaults tau = 5, eta = 0.1 there).
+
+Surprise is measured under the distribution this stage receives, before its own
+cut, as the authors' code does (`prob_original` in basusourya/mirostat,
+mirostat.py). Some implementations measure it under the cut, renormalised
+distribution instead (llama.cpp's v2, recalled from memory); that variant reads a
+lower surprise for the same token and so settles on a larger mu.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import ClassVar
+
+import numpy as np
+
+from tui.decoding.stage import (
+    Candidates,
+    History,
+    RecipeError,
+    StatefulStage,
+    check_interval,
+    format_number,
+    keep_most_likely,
+)
+
+
+@dataclass(frozen=True, slots=True)
+class SurpriseMemo:
+    """What mirostat needs from one step to update mu once the token is known."""
+
+    ids: np.ndarray  # token ids it kept (ascending)
+    probs: np.ndarray  # their probabilities under the distribution it received
+
+
+@dataclass(frozen=True, slots=True)
+class MirostatV2(StatefulStage):
+    """Keep tokens with surprise -log2 p <= mu; mu follows the drawn tokens' surprise.
+
+    `tau` is the target surprise in bits (log2 of the target perplexity), `eta` the
+    learning rate. The state is mu, starting at 2 * tau (Basu et al. 2021, Alg. 1).
+    If no token is within mu, the most likely are kept.
+    """
+
+    tau: float
+    eta: float = 0.1
+    name: ClassVar[str] = "mirostat"
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "tau", check_interval("mirostat tau", self.tau, 0.0, 0.0, "(inf"))
+        object.__setattr__(self, "eta", check_interval("mirostat eta", self.eta, 0.0, 0.0, "(inf"))
+
+    def initial_state(self) -> float:
+        return 2.0 * self.tau
+
+    def apply_with_state(self, cands: Candidates, history: History, state: float) -> tuple[Candidates, SurpriseMemo]:
+        probs = cands.probs()
+        mask = probs >= 2.0 ** (-state)  # -log2 p <= mu
+        if not mask.any():
+            mask = keep_most_likely(cands)
+        kept = cands.keep(mask)
+        return kept, SurpriseMemo(kept.ids, probs[mask])
+
+    def next_state(self, state: float, memo: SurpriseMemo, token_id: int) -> float:
+        at = int(np.searchsorted(memo.ids, token_id))
+        if at >= memo.ids.size or memo.ids[at] != token_id:
+            raise RecipeError(f"mirostat was told token {token_id} was drawn, but it had cut that token")
+        prob = max(float(memo.probs[at]), math.ulp(0.0))  # an underflowed 0 reads as ~1074 bits
+        surprise = -math.log2(prob)
+        return state - self.eta * (surprise - self.tau)
+
+    def text(self) -> str:
+        return f"{self.name}(tau={format_number(self.tau)},eta={format_number(self.eta)})"

@@ -1,0 +1,156 @@
+"""Stages that look at the history: repetition, presence and frequency penalties, n-gram bans.
+
+The history is every token id of the context so far, prompt and generated, as in
+transformers for decoder-only models. Penalties change the logits of tokens that
+occur in it; `no_repeat_ngram` removes tokens. Reference implementation compared
+against: transformers 5.24.0.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import ClassVar
+
+import numpy as np
+from numpy.lib.stride_tricks import sliding_window_view
+
+from tui.decoding.stage import (
+    Candidates,
+    History,
+    Stage,
+    check_interval,
+    check_real,
+    check_whole,
+    format_number,
+    keep_most_likely,
+)
+
+
+@dataclass(frozen=True, slots=True)
+class RepetitionPenalty(Stage):
+    """Penalized sampling (Keskar et al. 2019, CTRL): divide the logit of every
+    token that occurs in the history by theta, once however often it occurs.
+
+    Difference from the library, followed here on purpose: the paper divides every
+    such logit by theta; transformers' RepetitionPenaltyLogitsProcessor divides only
+    positive logits and *multiplies* negative ones by theta, so that a negative logit
+    also falls. For a negative logit the paper's rule raises it (toward 0). The two
+    agree whenever the penalised logits are >= 0. theta = 1 changes nothing;
+    theta < 1 rewards repetition.
+    """
+
+    theta: float
+    name: ClassVar[str] = "repetition_penalty"
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "theta", check_interval(self.name, self.theta, 0.0, 0.0, "(inf"))
+
+    def apply(self, cands: Candidates, history: History) -> Candidates:
+        if self.theta == 1.0 or history.tokens.size == 0:
+            return cands
+        seen, _ = history.counts()
+        at, _ = cands.positions_of(seen)
+        cands.logits[at] /= self.theta  # in place: the chain owns the array
+        return cands
+
+    def text(self) -> str:
+        return f"{self.name}={format_number(self.theta)}"
+
+
+@dataclass(frozen=True, slots=True)
+class PresencePenalty(Stage):
+    """Subtract a fixed amount from the logit of every token that occurs in the history.
+
+    The additive presence penalty of common API practice (no paper); negative values
+    reward repetition.
+    """
+
+    amount: float
+    name: ClassVar[str] = "presence_penalty"
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "amount", check_real(self.name, self.amount))
+
+    def apply(self, cands: Candidates, history: History) -> Candidates:
+        if self.amount == 0.0 or history.tokens.size == 0:
+            return cands
+        seen, _ = history.counts()
+        at, _ = cands.positions_of(seen)
+        cands.logits[at] -= self.amount
+        return cands
+
+    def text(self) -> str:
+        return f"{self.name}={format_number(self.amount)}"
+
+
+@dataclass(frozen=True, slots=True)
+class FrequencyPenalty(Stage):
+    """Subtract amount times the token's count in the history from its logit.
+
+    The additive frequency penalty of common API practice (no paper); negative values
+    reward repetition.
+    """
+
+    amount: float
+    name: ClassVar[str] = "frequency_penalty"
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "amount", check_real(self.name, self.amount))
+
+    def apply(self, cands: Candidates, history: History) -> Candidates:
+        if self.amount == 0.0 or history.tokens.size == 0:
+            return cands
+        seen, counts = history.counts()
+        at, present = cands.positions_of(seen)
+        cands.logits[at] -= self.amount * counts[present]
+        return cands
+
+    def text(self) -> str:
+        return f"{self.name}={format_number(self.amount)}"
+
+
+def banned_by_ngrams(tokens: np.ndarray, n: int) -> np.ndarray:
+    """Token ids that would complete an n-gram already present in `tokens` (ascending, distinct).
+
+    The next token t is banned when ``tokens[-(n-1):] + [t]`` occurs somewhere in
+    `tokens`; for n = 1 every token of the history is banned.
+    """
+    if n == 0 or tokens.size < n:
+        return np.zeros(0, dtype=np.int64)
+    if n == 1:
+        return np.unique(tokens)
+    windows = sliding_window_view(tokens, n)
+    prefix = tokens[tokens.size - n + 1 :]
+    matches = (windows[:, :-1] == prefix).all(axis=1)
+    return np.unique(windows[matches, -1])
+
+
+@dataclass(frozen=True, slots=True)
+class NoRepeatNGram(Stage):
+    """Ban every token that would complete an n-gram already in the history.
+
+    The rule of transformers' NoRepeatNGramLogitsProcessor (from fairseq). One
+    difference: when every token still in play is banned, transformers leaves all
+    scores at -inf (no distribution at all); here the most likely are kept, since
+    every truncating stage keeps at least one token. n = 0 bans nothing.
+    """
+
+    n: int
+    name: ClassVar[str] = "no_repeat_ngram"
+
+    def __post_init__(self) -> None:
+        object.__setattr__(self, "n", check_whole(self.name, self.n, 0))
+
+    def apply(self, cands: Candidates, history: History) -> Candidates:
+        if self.n == 0:
+            return cands
+        banned = banned_by_ngrams(history.tokens, self.n)
+        if banned.size == 0:
+            return cands
+        at, _ = cands.positions_of(banned)
+        mask = np.ones(cands.size, dtype=bool)
+        mask[at] = False
+        return cands.keep(mask if mask.any() else keep_most_likely(cands))
+
+    def text(self) -> str:
+        return f"{self.name}={self.n}"
