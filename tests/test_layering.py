@@ -15,7 +15,8 @@ CORE_MODULES = [
     "tui.sweep_spec", "tui.views", "tui.transcript_reader", "tui.transcript_schema",
     "tui.recovery", "tui.recovery_reader", "tui.report", "tui.report_html", "tui.report_md",
     "tui.rerun", "tui.token_style", "tui.bootstrap", "tui.sweep_runner", "tui.lean_llama",
-    "tui.model_cache", "tui.model_sources",
+    "tui.model_cache", "tui.model_sources", "tui.sweep_folder", "tui.sweep_plan",
+    "tui.sweep_results", "tui.sweep_progress",
 ]
 
 

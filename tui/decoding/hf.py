@@ -153,7 +153,9 @@ LIBRARY_ORDER: dict[type[Stage], tuple[str, str]] = {
 }
 _PENALTIES = (RepetitionPenalty, NoRepeatNGram)
 # Values that switch a field off, so that a model's own defaults do not leak in.
-_NEUTRAL = {"temperature": 1.0, "top_k": 0, "top_p": 1.0, "typical_p": 1.0, "epsilon_cutoff": 0.0, "eta_cutoff": 0.0}
+_NEUTRAL = {"temperature": 1.0, "top_k": 0, "top_p": 1.0, "min_p": 0.0, "typical_p": 1.0,
+            "epsilon_cutoff": 0.0, "eta_cutoff": 0.0}
+_NEUTRAL_PENALTIES = {"repetition_penalty": 1.0, "no_repeat_ngram_size": 0}
 
 
 def to_generation_config(recipe: Recipe) -> GenerationConfig:
@@ -166,7 +168,7 @@ def to_generation_config(recipe: Recipe) -> GenerationConfig:
         before = stages[:greedy_at]
         left_out += [f"{s.text()} (greedy decoding skips it)" for s in before if isinstance(s, TypicalP)]
         stages = [s for s in before if isinstance(s, _PENALTIES)]
-    fields: dict[str, Any] = {"do_sample": greedy_at is None}
+    fields: dict[str, Any] = {"do_sample": greedy_at is None, **_NEUTRAL_PENALTIES}
     if greedy_at is None:
         fields.update(_NEUTRAL)
     placed: list[Stage] = []

@@ -1,0 +1,207 @@
+"""Resuming and sharding a sweep: a killed run finishes with the numbers of an unbroken one.
+
+The reference for "the same numbers" is an uninterrupted run of the same sweep file in
+another folder (the definition of resumability this project sets itself): its
+results.csv and its raw samples must come out identical, byte for byte and token for
+token, after a SIGKILL and a re-run, and after running the shards and merging them.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import io
+import json
+import os
+import signal
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+
+from tui.cli import main as cli
+from tui.errors import UserError
+from tui.metrics import SampleRecord
+from tui.sweep_folder import SAMPLES, Manifest, SweepFolder, read_samples_file
+
+try:
+    from sweep_files import write_sweep
+except ImportError:
+    from tests.sweep_files import write_sweep
+
+ROOT = Path(__file__).resolve().parent.parent
+RESAMPLES = "100"
+# Makes the real command pause after each chunk it writes, so that the test can kill it
+# between chunks; loaded by Python's `site` module at start-up (sitecustomize).
+SLOW_CHUNKS = """\
+import time
+import tui.sweep_folder as folder
+
+_append = folder.SweepFolder.append_chunk
+
+
+def _append_then_wait(self, index, samples):
+    _append(self, index, samples)
+    time.sleep(2.0)
+
+
+folder.SweepFolder.append_chunk = _append_then_wait
+"""
+
+
+def run(*argv: str) -> tuple[int, str, str]:
+    out, err = io.StringIO(), io.StringIO()
+    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
+        rc = cli(list(argv))
+    return rc, out.getvalue(), err.getvalue()
+
+
+@pytest.fixture(scope="module")
+def base(tmp_path_factory) -> Path:
+    return tmp_path_factory.mktemp("sweep_resume")
+
+
+@pytest.fixture(scope="module")
+def sweep(base, tiny_model_dir) -> Path:
+    """2 prompts x 2 recipes x 4 samples in chunks of 4 rows: 4 chunks."""
+    return write_sweep(base / "lamp.toml", tiny_model_dir, stop=["."])
+
+
+@pytest.fixture(scope="module")
+def reference(base, sweep) -> Path:
+    """The uninterrupted run."""
+    rc, _, err = run("sweep", str(sweep), "--out", str(base / "whole"), "--resamples", RESAMPLES)
+    assert rc == 0, err
+    return base / "whole"
+
+
+def same_samples(a: Path, b: Path) -> bool:
+    return ({c: [s.to_json() for s in v] for c, v in SweepFolder.read(a).load_chunks().items()}
+            == {c: [s.to_json() for s in v] for c, v in SweepFolder.read(b).load_chunks().items()})
+
+
+def test_a_killed_run_resumes_to_the_same_numbers(base, sweep, reference):
+    out = base / "killed"
+    hooks = base / "hooks"
+    hooks.mkdir()
+    (hooks / "sitecustomize.py").write_text(SLOW_CHUNKS)
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join([str(hooks), str(ROOT)])}
+    proc = subprocess.Popen([sys.executable, "-m", "tui", "sweep", str(sweep), "--out", str(out),
+                             "--resamples", RESAMPLES], env=env, cwd=base,
+                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
+    deadline = time.monotonic() + 120
+    try:
+        while b'"end"' not in ((out / SAMPLES).read_bytes() if (out / SAMPLES).exists() else b""):
+            assert proc.poll() is None, proc.stderr.read().decode()
+            assert time.monotonic() < deadline, "no chunk written in 120 s"
+            time.sleep(0.02)
+        proc.send_signal(signal.SIGKILL)
+    finally:
+        proc.kill()
+        proc.wait()
+        proc.stderr.close()
+    assert proc.returncode == -signal.SIGKILL
+    written = SweepFolder.read(out).done
+    assert 1 <= len(written) < 4
+    # What a crash in the middle of the next chunk's write leaves: some of its sample
+    # lines, the last one cut short, and no closing line.
+    missing = min(set(range(4)) - set(written))
+    lines = [json.dumps({"chunk": missing, "sample": s.to_json()})
+             for s in SweepFolder.read(reference).load_chunks()[missing][:2]]
+    with open(out / SAMPLES, "a", encoding="utf-8") as fh:
+        fh.write(lines[0] + "\n" + lines[1][:40])
+
+    rc, stdout, err = run("sweep", str(sweep), "--out", str(out), "--resamples", RESAMPLES)
+    assert rc == 0, err
+    assert f"{len(written)} of 4 chunks already written" in err
+    assert (out / "results.csv").read_text() == (reference / "results.csv").read_text()
+    assert same_samples(out, reference)
+    # the torn tail was cut off and the chunks went on in order: the same file
+    assert (out / SAMPLES).read_bytes() == (reference / SAMPLES).read_bytes()
+    # and a third run does nothing new
+    rc, _, err = run("sweep", str(sweep), "--out", str(out), "--resamples", RESAMPLES)
+    assert rc == 0 and "4 of 4 chunks already written" in err
+
+
+def test_another_sweep_file_for_the_folder_is_refused(base, tiny_model_dir, reference, capsys):
+    other = write_sweep(base / "other.toml", tiny_model_dir, stop=["."], seed=8)
+    assert cli(["sweep", str(other), "--out", str(reference)]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith(f"error: {reference}: holds a different sweep: its fingerprint ")
+    assert "differs" in err and err.count("\n") == 1
+
+
+@pytest.fixture(scope="module")
+def shards(base, sweep) -> list[Path]:
+    """Shards 1/2 and 2/2 of the sweep, each in its own folder."""
+    folders = [base / "shard1", base / "shard2"]
+    for i, folder in enumerate(folders, start=1):
+        rc, stdout, err = run("sweep", str(sweep), "--shard", f"{i}/2", "--out", str(folder))
+        assert rc == 0, err
+        assert not (folder / "results.csv").exists() and stdout == ""
+    return folders
+
+
+def test_shards_merge_into_the_unsharded_tables(base, shards, reference):
+    # shard I of N holds the chunks whose index % N == I - 1 (README)
+    assert SweepFolder.read(shards[0]).done == {0, 2}
+    assert SweepFolder.read(shards[1]).done == {1, 3}
+    merged = base / "merged"
+    rc, stdout, err = run("sweep-merge", *map(str, shards), "--out", str(merged),
+                          "--resamples", RESAMPLES)
+    assert rc == 0, err
+    assert (merged / "results.csv").read_text() == (reference / "results.csv").read_text()
+    assert same_samples(merged, reference)
+    assert "tiny sweep: all 2 prompt(s)" in stdout
+
+
+def test_merge_reports_missing_overlapping_and_foreign_folders(base, sweep, shards,
+                                                              tiny_model_dir, capsys):
+    shard1, shard2 = shards
+    assert cli(["sweep-merge", str(shard1), "--out", str(base / "m-out")]) == 2
+    assert capsys.readouterr().err == ("error: chunks 1, 3 of 4 are missing (shard 2/2); run them "
+                                       "(or resume their folder) and merge again\n")
+    assert not (base / "m-out").exists()
+    assert cli(["sweep-merge", str(shard1), str(shard1), str(shard2), "--out",
+                str(base / "m-twice"), "--resamples", "10"]) == 0
+    err = capsys.readouterr().err
+    assert f"note: chunk 0 is in both {shard1} and {shard1}" in err
+    other = write_sweep(base / "foreign.toml", tiny_model_dir, seed=99, samples=1)
+    assert cli(["sweep", str(other), "--shard", "2/2", "--out", str(base / "foreign")]) == 0
+    capsys.readouterr()
+    assert cli(["sweep-merge", str(shard1), str(base / "foreign"), "--out", str(base / "x")]) == 2
+    err = capsys.readouterr().err
+    assert err.startswith(f"error: {base / 'foreign'}: holds a different sweep from {shard1}")
+    assert cli(["sweep", str(sweep), "--shard", "1/2", "--out", str(shard2)]) == 2
+    assert "holds shard 2/2, not shard 1/2" in capsys.readouterr().err
+
+
+def record(chunk: int, sample: int) -> SampleRecord:
+    return SampleRecord(recipe="greedy", prompt_index=0, sample_index=sample,
+                        token_ids=(chunk, sample), text="ab", logprobs=(-0.5, -1.0),
+                        kept=(1, 1), final_entropy=(0.0, 0.0), ending="length")
+
+
+def test_a_torn_chunk_is_cut_off_and_damage_before_the_last_chunk_is_an_error(tmp_path):
+    manifest = Manifest("f" * 64, "t", "t.toml", ("greedy",), 1, 4, 4, 0)
+    folder = SweepFolder.open_for_run(tmp_path / "f", manifest, "text", {})
+    folder.append_chunk(0, [record(0, 0), record(0, 1)])
+    folder.append_chunk(1, [record(1, 2), record(1, 3)])
+    path = tmp_path / "f" / SAMPLES
+    whole = path.read_bytes()
+    path.write_bytes(whole + b'{"chunk": 2, "sample": {"recipe": "gr')
+    reopened = SweepFolder.open_for_run(tmp_path / "f", manifest, "text", {})
+    assert reopened.done == {0, 1} and path.read_bytes() == whole
+    assert reopened.load_chunks()[1][1] == record(1, 3)
+    # a closing line that lost its line end is cut off too: the next chunk would join it
+    path.write_bytes(whole[:-1])
+    assert SweepFolder.open_for_run(tmp_path / "f", manifest, "text", {}).done == {0}
+    reopened.append_chunk(1, [record(1, 2), record(1, 3)])
+    assert path.read_bytes() == whole
+    # a damaged first chunk followed by a closed one is not a crash's trace: refuse it
+    lines = whole.decode().splitlines(keepends=True)
+    path.write_text(lines[0] + lines[1][:-5] + "\n" + "".join(lines[2:]))
+    with pytest.raises(UserError, match=r"samples.jsonl: line 2: "):
+        read_samples_file(path)
+    assert read_samples_file(tmp_path / "absent.jsonl") == ({}, 0)

@@ -1,0 +1,87 @@
+"""`logitfork sweep SWEEP.toml`: many samples per recipe, measured, with the front.
+
+Runs every (recipe, sample) row of every prompt in batched chunks, appends each
+finished chunk to the output folder, and, once every chunk is in, writes
+results.csv, results.md and front.png there and prints the tables. Running the same
+command again resumes: finished chunks are skipped. `--shard I/N` runs only the
+chunks whose index % N == I - 1, into a folder of its own, for `sweep-merge`.
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+
+
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    p.add_argument("sweep", metavar="SWEEP.toml", help="the sweep file")
+    p.add_argument("--out", default=None, metavar="DIR",
+                   help="output folder (default: sweeps/<file stem>/ in the current folder; "
+                        "an existing folder of the same sweep is resumed)")
+    p.add_argument("--shard", default=None, metavar="I/N",
+                   help="run only shard I of N (1-based): the chunks whose index %% N == I - 1 "
+                        "(default folder: sweeps/<file stem>-shard-I-of-N/)")
+    p.add_argument("--resamples", type=int, default=1000, metavar="N",
+                   help="bootstrap resamples for the 95%% intervals (default 1000)")
+    p.add_argument("--allow-pickle", action="store_true",
+                   help="allow pickled (.bin/.pt) weights; only for files you trust")
+
+
+def main(args: argparse.Namespace) -> int:
+    from pathlib import Path
+
+    from tui.errors import UserError
+    from tui.sweep_folder import SweepFolder, package_versions, shard_text
+    from tui.sweep_plan import (build_job, default_folder, make_manifest, parse_shard,
+                                resolve_prompts)
+    from tui.sweep_spec import load_sweep
+
+    spec = load_sweep(args.sweep)
+    shard = parse_shard(args.shard)
+    if args.resamples < 1:
+        raise UserError(f"--resamples: must be at least 1, got {args.resamples}")
+    prompts = resolve_prompts(spec)
+    manifest = make_manifest(spec, prompts, shard)
+    out = Path(args.out) if args.out else default_folder(spec, shard)
+    SweepFolder.check_existing(out, manifest)  # refuse a wrong folder before loading anything
+
+    from tui.forward import make_runner
+    from tui.models import load_model
+    from tui.sweep_progress import SweepProgress
+    from tui.sweep_runner import SweepRunner
+
+    lm = load_model(spec.model, allow_pickle=args.allow_pickle)
+    job = build_job(spec, prompts, lm)
+    runner = make_runner(lm.model)
+    versions = {**package_versions(), "model": {"name": lm.name, "source": lm.source,
+                                                "dtype": lm.dtype},
+                "forward": type(runner).__name__}
+    folder = SweepFolder.open_for_run(out, manifest, spec.source_text, versions)
+    todo = [c for c in job.chunks() if folder.manifest.owns(c.index) and c.index not in folder.done]
+    owned = len(folder.owned_chunks())
+    if folder.done:
+        print(f"resuming {out}: {owned - len(todo)} of {owned} chunks already written",
+              file=sys.stderr)
+    if todo:
+        sweeper = SweepRunner(runner, lm.decode, job, eos_ids=lm.eos_ids,
+                              max_context=lm.max_context)
+        progress = SweepProgress(sum(len(c.rows) for c in todo), job.max_new_tokens,
+                                 chunks=len(todo), title=f"sweep {spec.path.name}")
+        try:
+            for chunk in todo:
+                folder.append_chunk(chunk.index, sweeper.run_chunk(chunk, on_step=progress.step))
+                progress.chunk_done(len(chunk.rows))
+        finally:  # end the progress line, also when interrupted (written chunks stay)
+            progress.finish()
+    print(f"samples: {out / 'samples.jsonl'}", file=sys.stderr)
+    if shard is not None:
+        print(f"{shard_text(shard)} done: {owned} chunk(s) in {out}; join the shard folders "
+              "with: logitfork sweep-merge DIR...", file=sys.stderr)
+        return 0
+
+    from tui.sweep_report import report_folder
+
+    report_folder(folder, sys.stdout, n_resamples=args.resamples)
+    print(f"results: {out / 'results.csv'}, {out / 'results.md'}, {out / 'front.png'}",
+          file=sys.stderr)
+    return 0
