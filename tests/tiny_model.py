@@ -1,0 +1,188 @@
+"""A tiny random-weight llama, built offline, for fast tests and the benchmark.
+
+`build_tiny_model(path)` trains a small byte-level BPE tokenizer on a few invented
+sentences (with multi-byte UTF-8 characters, so incremental decoding has byte pieces
+to join), builds a 2-layer `LlamaForCausalLM` from a fixed seed, and saves both with
+`save_pretrained` (safetensors). `build_tiny_gguf(model_dir, path)` writes the same
+model as an unquantised (F32) GGUF file, the way llama.cpp lays one out, so the GGUF
+conversion cache can be tested without the 98 MB embedded model.
+
+Run as a script to build one: ``python tests/tiny_model.py OUT_DIR [--gguf FILE]``.
+"""
+
+from __future__ import annotations
+
+import json
+import sys
+from pathlib import Path
+
+# The tokenizer's special tokens. EOS_TOKEN ends a text; the role tokens frame chat turns.
+EOS_TOKEN = "<|end|>"
+ROLE_TOKENS = ("<|system|>", "<|user|>", "<|assistant|>")
+VOCAB_SIZE = 300  # 256 byte symbols + 4 special tokens + 40 merges
+SEED = 1234
+
+# One turn per message, then the assistant's opening tag when a reply is wanted.
+CHAT_TEMPLATE = (
+    "{% for message in messages %}"
+    "{{ '<|' + message['role'] + '|>' + message['content'] + '<|end|>' + '\n' }}"
+    "{% endfor %}"
+    "{% if add_generation_prompt %}{{ '<|assistant|>' }}{% endif %}"
+)
+
+# Invented text. Accented letters (2 bytes), CJK (3 bytes) and an emoji (4 bytes) make
+# characters that the 300-token vocabulary can only write as several byte tokens.
+TRAINING_TEXT = [
+    "The lighthouse keeper of Vellmar Quay counted the gulls every morning.",
+    "Tea at the Copper Kettle: smoky lapsang, jasmine pearls and a café crème.",
+    "def add(a, b):\n    return a + b\n",
+    "On the planet Orrin the rivers run uphill after the second sunset.",
+    "Señora Ibáñez sold naïve paintings of the harbour to the ferry crew.",
+    "The old map said 北の港 in faded ink, and the sailor smiled 🙂 at it.",
+    "Fog rolled over the quay; the ferry bell rang twice, then three times.",
+    "Zoë ordered a crème brûlée and a pot of smoky tea for the long wait.",
+]
+
+
+def _train_tokenizer():
+    """A byte-level BPE `PreTrainedTokenizerFast` with EOS, role tokens and a chat template."""
+    from tokenizers import Tokenizer, decoders, models, pre_tokenizers, trainers
+    from transformers import PreTrainedTokenizerFast
+
+    backend = Tokenizer(models.BPE())
+    backend.pre_tokenizer = pre_tokenizers.ByteLevel(add_prefix_space=False)
+    backend.decoder = decoders.ByteLevel()
+    trainer = trainers.BpeTrainer(
+        vocab_size=VOCAB_SIZE,
+        special_tokens=[EOS_TOKEN, *ROLE_TOKENS],
+        initial_alphabet=pre_tokenizers.ByteLevel.alphabet(),
+        show_progress=False,
+    )
+    backend.train_from_iterator(TRAINING_TEXT * 4, trainer=trainer)
+    return PreTrainedTokenizerFast(
+        tokenizer_object=backend,
+        eos_token=EOS_TOKEN,
+        additional_special_tokens=list(ROLE_TOKENS),
+        chat_template=CHAT_TEMPLATE,
+        clean_up_tokenization_spaces=False,
+    )
+
+
+def build_tiny_model(path: str | Path) -> Path:
+    """Build the tiny llama and its tokenizer into `path` (created if missing); return it.
+
+    Deterministic: the tokenizer is trained on fixed text and the weights come from
+    torch seed `SEED` inside a forked RNG, so the caller's random state is untouched.
+    Weights are drawn with std 0.25 (not transformers' 0.02) so the next-token
+    distributions are peaked enough for top-k / top-p to matter.
+    """
+    import torch
+    from transformers import GenerationConfig, LlamaConfig, LlamaForCausalLM
+
+    path = Path(path)
+    path.mkdir(parents=True, exist_ok=True)
+    tokenizer = _train_tokenizer()
+    eos_id = tokenizer.convert_tokens_to_ids(EOS_TOKEN)
+    config = LlamaConfig(
+        vocab_size=len(tokenizer),
+        hidden_size=64,
+        intermediate_size=128,
+        num_hidden_layers=2,
+        num_attention_heads=4,
+        num_key_value_heads=2,
+        max_position_embeddings=256,
+        rms_norm_eps=1e-6,
+        rope_theta=10000.0,
+        initializer_range=0.25,
+        tie_word_embeddings=True,
+        bos_token_id=None,
+        eos_token_id=eos_id,
+        pad_token_id=eos_id,
+    )
+    with torch.random.fork_rng(devices=[]):
+        torch.manual_seed(SEED)
+        model = LlamaForCausalLM(config).eval()
+    model.generation_config = GenerationConfig(eos_token_id=eos_id, pad_token_id=eos_id)
+    model.save_pretrained(path)
+    tokenizer.save_pretrained(path)
+    return path
+
+
+def _llama_cpp_permute(weight, n_head: int):
+    """Reorder q/k rows the way llama.cpp's converter does (rotary halves interleaved).
+
+    reference: llama.cpp convert_hf_to_gguf.py LlamaModel.permute; transformers'
+    LlamaTensorProcessor._reverse_permute_weights undoes it.
+    """
+    rows = weight.shape[0]
+    return weight.reshape(n_head, 2, rows // n_head // 2, *weight.shape[1:]).swapaxes(1, 2).reshape(weight.shape)
+
+
+def build_tiny_gguf(model_dir: str | Path, path: str | Path) -> Path:
+    """Write the tiny llama in `model_dir` as an F32 GGUF file at `path`; return it.
+
+    Tensor names come from gguf's own name map; q and k are permuted as llama.cpp does;
+    the tokenizer goes in as a "gpt2" (byte-level BPE) vocabulary with its merges.
+    """
+    import gguf
+    import numpy as np
+    from safetensors.numpy import load_file
+
+    model_dir, path = Path(model_dir), Path(path)
+    config = json.loads((model_dir / "config.json").read_text())
+    tok = json.loads((model_dir / "tokenizer.json").read_text())
+    tensors = load_file(str(model_dir / "model.safetensors"))
+
+    writer = gguf.GGUFWriter(str(path), arch="llama")
+    writer.add_name("tiny-llama")
+    writer.add_context_length(config["max_position_embeddings"])
+    writer.add_embedding_length(config["hidden_size"])
+    writer.add_block_count(config["num_hidden_layers"])
+    writer.add_feed_forward_length(config["intermediate_size"])
+    writer.add_head_count(config["num_attention_heads"])
+    writer.add_head_count_kv(config["num_key_value_heads"])
+    writer.add_layer_norm_rms_eps(config["rms_norm_eps"])
+    writer.add_rope_freq_base(10000.0)
+    writer.add_file_type(gguf.LlamaFileType.ALL_F32)
+
+    vocab: dict[str, int] = tok["model"]["vocab"]
+    for added in tok["added_tokens"]:
+        vocab[added["content"]] = added["id"]
+    tokens = [t for t, _ in sorted(vocab.items(), key=lambda item: item[1])]
+    special = {a["content"] for a in tok["added_tokens"] if a["special"]}
+    merges = [m if isinstance(m, str) else " ".join(m) for m in tok["model"]["merges"]]
+    writer.add_tokenizer_model("gpt2")
+    writer.add_tokenizer_pre("default")
+    writer.add_token_list(tokens)
+    writer.add_token_types([gguf.TokenType.CONTROL if t in special else gguf.TokenType.NORMAL for t in tokens])
+    writer.add_token_merges(merges)
+    writer.add_eos_token_id(config["eos_token_id"])
+    writer.add_pad_token_id(config["eos_token_id"])
+    writer.add_chat_template(CHAT_TEMPLATE)
+
+    name_map = gguf.get_tensor_name_map(gguf.MODEL_ARCH.LLAMA, config["num_hidden_layers"])
+    n_head, n_kv = config["num_attention_heads"], config["num_key_value_heads"]
+    for hf_name, array in tensors.items():
+        if hf_name == "lm_head.weight":
+            continue  # tied: a GGUF without output.weight means tie_word_embeddings
+        array = array.astype(np.float32)
+        if hf_name.endswith("q_proj.weight"):
+            array = _llama_cpp_permute(array, n_head)
+        elif hf_name.endswith("k_proj.weight"):
+            array = _llama_cpp_permute(array, n_kv)
+        writer.add_tensor(name_map.get_name(hf_name, try_suffixes=(".weight", ".bias")), array)
+
+    writer.write_header_to_file()
+    writer.write_kv_data_to_file()
+    writer.write_tensors_to_file()
+    writer.close()
+    return path
+
+
+if __name__ == "__main__":
+    if len(sys.argv) not in (2, 4) or (len(sys.argv) == 4 and sys.argv[2] != "--gguf"):
+        raise SystemExit("usage: python tests/tiny_model.py OUT_DIR [--gguf FILE]")
+    out = build_tiny_model(sys.argv[1])
+    print(out)
+    if len(sys.argv) == 4:
+        print(build_tiny_gguf(out, sys.argv[3]))
