@@ -396,7 +396,8 @@ class Engine:
             if not 0 <= step < len(pane.samplers):
                 raise EngineError(f"pane {pane.name!r} has no step {step}")
             logits = self.logits_at(pane_id, step)
-            return pane.samplers[step].trace(logits, self.history(pane_id, step))
+            _recipe, sampler = pane.samplers[step]
+            return sampler.trace(logits, self.history(pane_id, step))
 
     # ----- helpers --------------------------------------------------------------------
 

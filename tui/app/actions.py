@@ -1,0 +1,319 @@
+"""The app's key actions: each asks what it needs in a dialog, then queues engine work.
+
+Nothing here calls a locking engine method on the app's thread: every change goes to
+the `Stepper` as an operation and the screen follows when its snapshot comes back.
+Actions that would change the session are disabled on a read-only source; actions on
+the panes are disabled while another screen (inspect, help, a dialog) is on top.
+"""
+
+from __future__ import annotations
+
+import random
+from pathlib import Path
+from typing import TYPE_CHECKING, Any, Callable
+
+from textual import work
+
+from tui.app.confirm_dialog import ConfirmDialog
+from tui.app.help_screen import HelpScreen
+from tui.app.input_dialog import InputDialog
+from tui.app.recipe_dialog import RecipeChoice, RecipeDialog
+from tui.app.safe_text import shown_line
+from tui.app.save_dialog import SaveDialog, default_path
+from tui.app.token_pane import TokenPane
+from tui.engine import Engine
+
+if TYPE_CHECKING:
+    from tui.app.app import LogitforkApp
+
+CHANGES = frozenset({"run_pause", "one_step", "fork", "edit", "add_pane", "remove_pane",
+                     "rewind", "toggle_draws", "reseed", "save"})
+ON_PANES = CHANGES | {"cursor", "cursor_to", "inspect", "next_pane"}
+ANYWHERE = frozenset({"run_pause"})
+
+
+def check_seed(text: str) -> str | None:
+    if not text.isdigit():
+        return f"the seed must be a whole number >= 0, got {text!r}"
+    return None
+
+
+class SessionActions:
+    """Mixed into `LogitforkApp`: one `action_*` per key of the main screen."""
+
+    def check_action(self: "LogitforkApp", action: str,  # type: ignore[misc]
+                     parameters: tuple[object, ...]) -> bool | None:
+        if action in ON_PANES and action not in ANYWHERE and len(self.screen_stack) > 1:
+            return False
+        if action in CHANGES and (self.source is None or self.source.engine is None):
+            return None  # shown, but disabled
+        if action in ON_PANES and self.view is None:
+            return None
+        return True
+
+    def submit(self: "LogitforkApp", label: str, operation: Callable[[Engine], Any]) -> None:
+        """Queue engine work on the worker; the top bar shows it until it is done."""
+        if self.stepper is None:
+            return
+        self.busy.append(label)
+        self.stepper.submit(label, operation)
+        self.schedule_redraw()
+
+    def after_operation(self: "LogitforkApp", label: str, result: Any) -> None:
+        """Follow-ups on the app's side once an operation is done."""
+        if label in ("fork", "add") and isinstance(result, int):
+            self.focus_wanted = result  # focused once the redraw has mounted it
+        elif label == "force":
+            self.follow = True
+            if self.view is not None:
+                self.cursor = self.view.step
+        elif label == "restart":
+            self.follow, self.cursor = True, 0
+
+    # ----- running and the cursor ---------------------------------------------------
+
+    def action_run_pause(self: "LogitforkApp") -> None:
+        if self.stepper is None or self.view is None:
+            return
+        if self.stepper.running:
+            self.stepper.pause()
+        elif self.view.finished:
+            self.notify("every pane has stopped: rewind (r) or restart with a new seed (S)",
+                        markup=False)
+        else:
+            self.follow, self.cursor = True, self.view.step
+            self.stepper.run()
+        self.schedule_redraw()
+
+    def action_one_step(self: "LogitforkApp") -> None:
+        if self.stepper is None:
+            return
+        if self.stepper.running:
+            self.stepper.pause()
+        elif self.view is not None and self.view.finished:
+            self.notify("every pane has stopped: rewind (r) or restart with a new seed (S)",
+                        markup=False)
+        else:
+            self.follow = True
+            self.stepper.step_once()
+
+    def action_cursor(self: "LogitforkApp", delta: int) -> None:
+        if self.view is None:
+            return
+        self.cursor = max(0, min(self.view.step, self.cursor + delta))
+        self.follow = self.cursor == self.view.step
+        self.redraw()
+
+    def action_cursor_to(self: "LogitforkApp", where: str) -> None:
+        if self.view is None:
+            return
+        self.cursor = 0 if where == "start" else self.view.step
+        self.follow = self.cursor == self.view.step
+        self.redraw()
+
+    def action_next_pane(self: "LogitforkApp", delta: int = 1) -> None:
+        panes = self.grid.panes()
+        if not panes:
+            return
+        current = self.focused_pane()
+        i = panes.index(current) if current in panes else -delta
+        panes[(i + delta) % len(panes)].focus()
+
+    # ----- views ---------------------------------------------------------------------
+
+    def action_inspect(self: "LogitforkApp") -> None:
+        pane = self.focused_pane()
+        if pane is None or pane.pane is None:
+            return
+        upto = min(self.cursor, len(pane.pane.records))
+        if upto == 0:
+            self.notify("no token at the cursor yet: step first (n)", markup=False)
+            return
+        self.open_inspect(pane.pane_id, upto - 1)
+
+    def open_inspect(self: "LogitforkApp", pane_id: int, step: int) -> None:
+        from tui.app.inspect_screen import InspectScreen
+
+        if self.view is None or self.source is None:
+            return
+        self.push_screen(InspectScreen(self.source, self.view, pane_id, step, self.scheme),
+                         self._inspect_closed)
+
+    def _inspect_closed(self: "LogitforkApp", force: tuple[int, int, int] | None) -> None:
+        if force is not None:
+            self.force_token(*force)
+
+    def on_token_pane_token_clicked(self: "LogitforkApp", message: TokenPane.TokenClicked) -> None:
+        self.open_inspect(message.pane_id, message.step)
+
+    def action_help(self: "LogitforkApp") -> None:
+        if isinstance(self.screen, HelpScreen):
+            return
+        rows = [(self.get_key_display(b), b.tooltip or b.description)
+                for b in self._bindings_list() if b.show]
+        rows.append(("escape", "close a view or dialog"))
+        self.push_screen(HelpScreen(rows, self.scheme))
+
+    def _bindings_list(self: "LogitforkApp") -> list[Any]:
+        from textual.binding import Binding
+
+        return [b for b in self.BINDINGS if isinstance(b, Binding)]
+
+    # ----- changing the session -------------------------------------------------------
+
+    def action_fork(self: "LogitforkApp") -> None:
+        pane = self.focused_pane()
+        if pane is None or pane.pane is None or self.view is None:
+            return
+        src = pane.pane
+        if src.stop is not None:
+            self.notify(f"{shown_line(src.name)} has stopped ({src.stop}); rewind before its "
+                        "last step to fork it", severity="warning", markup=False)
+            return
+
+        def done(choice: RecipeChoice | None) -> None:
+            if choice is not None:
+                self.submit("fork", lambda e: e.fork(src.id, choice.recipe, choice.name))
+
+        title = f"Fork {shown_line(src.name)} at step {len(src.records)}: the new pane's recipe"
+        self.push_screen(RecipeDialog(title, src.recipe, name=f"{src.name} fork"), done)
+
+    def action_edit(self: "LogitforkApp") -> None:
+        pane = self.focused_pane()
+        if pane is None or pane.pane is None:
+            return
+        src = pane.pane
+
+        def done(choice: RecipeChoice | None) -> None:
+            if choice is not None and choice.recipe != src.recipe:
+                self.submit("edit", lambda e: e.set_recipe(src.id, choice.recipe))
+
+        title = (f"Recipe of {shown_line(src.name)} from step {len(src.records)} on "
+                 "(earlier tokens stay)")
+        self.push_screen(RecipeDialog(title, src.recipe), done)
+
+    def action_add_pane(self: "LogitforkApp") -> None:
+        if self.view is None:
+            return
+        pane = self.focused_pane()
+        recipe = pane.pane.recipe if pane is not None and pane.pane is not None else "greedy"
+
+        def done(choice: RecipeChoice | None) -> None:
+            if choice is not None:
+                self.submit("add", lambda e: e.add_pane(choice.recipe, choice.name))
+
+        title = f"A new pane from the prompt (it catches up to step {self.view.step})"
+        self.push_screen(RecipeDialog(title, recipe, name=f"pane {len(self.view.panes) + 1}"),
+                         done)
+
+    def action_remove_pane(self: "LogitforkApp") -> None:
+        pane = self.focused_pane()
+        if pane is None or pane.pane is None or self.view is None:
+            return
+        if len(self.view.panes) == 1:
+            self.notify("the last pane cannot be removed", severity="warning", markup=False)
+            return
+        pane_id, name = pane.pane_id, pane.pane.name
+
+        def done(answer: str | None) -> None:
+            if answer == "y":
+                self.submit("remove", lambda e: e.remove_pane(pane_id))
+                self.call_after_refresh(self.action_next_pane)
+
+        self.push_screen(ConfirmDialog(f"Remove the pane {name!r} and its text?",
+                                       [("y", "remove"), ("n", "keep")]), done)
+
+    def action_rewind(self: "LogitforkApp") -> None:
+        if self.view is None or self.stepper is None:
+            return
+        step = self.cursor
+        if step == self.view.step:
+            self.notify("the cursor is at the end: move it back (\u2190, home) to rewind",
+                        markup=False)
+            return
+        self.stepper.pause()
+        self.follow = True
+        self.submit("rewind", lambda e: e.rewind(step))
+
+    def action_toggle_draws(self: "LogitforkApp") -> None:
+        if self.view is None:
+            return
+        shared = not self.view.shared_draws
+        self.submit("draws", lambda e: e.set_shared_draws(shared))
+
+    def action_reseed(self: "LogitforkApp") -> None:
+        def done(text: str | None) -> None:
+            if text is not None:
+                seed = int(text)
+                if self.stepper is not None:
+                    self.stepper.pause()
+                self.submit("restart", lambda e: e.restart(seed))
+
+        self.push_screen(InputDialog("Restart from the prompt with the seed",
+                                     str(random.randrange(10**6)), check=check_seed,
+                                     hint="Every pane goes back to the prompt; recipes stay."),
+                         done)
+
+    def force_token(self: "LogitforkApp", pane_id: int, step: int, token_id: int) -> None:
+        """Force a token at a step, then run the session back to where it was."""
+        if self.stepper is None or self.view is None:
+            return
+        back_to = self.view.step
+        self.stepper.pause()
+
+        def operation(engine: Engine) -> None:
+            engine.force(pane_id, step, token_id)
+
+        self.submit("force", operation)
+        self.stepper.run(until=max(back_to, step + 1))
+
+    # ----- saving and quitting -----------------------------------------------------------
+
+    def action_save(self: "LogitforkApp", then_quit: bool = False) -> None:
+        if self.view is None or self.source is None or self.source.engine is None:
+            return
+        path = default_path(self.source.scenario_name, self.view.seed, folder=self.save_folder)
+
+        def done(chosen: Path | None) -> None:
+            if chosen is not None and self.view is not None:
+                self._write_transcript(chosen, self.view, self.version, then_quit)
+
+        self.push_screen(SaveDialog(path), done)
+
+    @work(thread=True, exclusive=False, exit_on_error=False, group="save")
+    def _write_transcript(self: "LogitforkApp", path: Path, view: Any, version: int,
+                          then_quit: bool) -> None:
+        from tui.transcript import write_atomic
+
+        assert self.source is not None
+        lines = self.source.transcript_lines(view)
+        try:
+            write_atomic(path, lines or [])
+        except OSError as exc:
+            self.call_from_thread(self.notify, f"could not save {path}: {exc.strerror or exc}",
+                                  severity="error", markup=False)
+            return
+        self.call_from_thread(self._saved, path, version, then_quit)
+
+    def _saved(self: "LogitforkApp", path: Path, version: int, then_quit: bool) -> None:
+        self.saved_version = version
+        self.last_saved = path
+        self.notify(f"saved {path}", markup=False)
+        if then_quit:
+            self.exit()
+
+    def action_quit_app(self: "LogitforkApp") -> None:
+        if not self.unsaved or self.source is None or self.source.engine is None:
+            self.exit()
+            return
+
+        def done(answer: str | None) -> None:
+            if answer == "s":
+                self.action_save(then_quit=True)
+            elif answer == "d":
+                self.exit()
+
+        self.push_screen(ConfirmDialog("The session has unsaved steps. Save a transcript "
+                                       "before quitting?",
+                                       [("s", "save"), ("d", "quit without saving"),
+                                        ("c", "cancel")]), done)

@@ -1,0 +1,299 @@
+"""The Textual app: the panes side by side, the top bar, the legend and the keys.
+
+`LogitforkApp` is built on a session source (see `source.py`): a `SessionLoader`
+(the model loads in a worker while a progress panel shows), a `LiveSource` on a ready
+engine, or a read-only `StaticSource`. All engine work runs on one worker thread
+through a `Stepper`; this module only shows snapshots and turns keys into requests.
+The key actions live in `actions.py`; `make_app` is the one factory used by the
+`watch` command and by the tests.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from textual import on, work
+from textual.app import App, ComposeResult
+from textual.binding import Binding
+from textual.filter import Monochrome
+from textual.message import Message
+from textual.worker import get_current_worker
+
+from tui.app.actions import SessionActions
+from tui.app.colouring import Scheme
+from tui.app.key_bar import KeyBar
+from tui.app.legend import Legend
+from tui.app.loading_panel import LoadingPanel
+from tui.app.pane_grid import PaneGrid
+from tui.app.source import SessionLoader, SessionSource
+from tui.app.stepper import (STOPPED_ALL, Failed, OperationDone, RunChanged, Stepped, Stepper,
+                             StepperEvent)
+from tui.app.token_pane import TokenPane
+from tui.app.top_bar import BarState, TopBar
+from tui.engine import SessionView
+
+REDRAW_SECONDS = 1 / 30  # the panes redraw at most this often, however fast steps come
+RATE_SMOOTHING = 0.3  # weight of the newest step in the steps-per-second average
+
+
+class LogitforkApp(SessionActions, App[int]):
+    """The live side-by-side view of a decoding session."""
+
+    CSS_PATH = ["app.tcss", "dialogs.tcss", "inspect.tcss"]
+    TITLE = "logitfork"
+    ENABLE_COMMAND_PALETTE = False
+    BINDINGS = [
+        Binding("space", "run_pause", "run/pause", tooltip="run, or pause after the step "
+                "under way"),
+        Binding("n", "one_step", "step", tooltip="one step in every pane (pauses first "
+                "when running)"),
+        Binding("left", "cursor(-1)", "cursor", key_display="\u2190",
+                tooltip="cursor one step back: the panes show the text up to the cursor"),
+        Binding("right", "cursor(1)", "cursor", key_display="\u2192",
+                tooltip="cursor one step forward"),
+        Binding("home", "cursor_to('start')", "jump", tooltip="cursor to the start"),
+        Binding("end", "cursor_to('end')", "jump", tooltip="cursor to the end (follows new "
+                "steps)"),
+        Binding("enter", "inspect", "inspect", key_display="\u23ce", tooltip="inspect the "
+                "focused pane at the cursor (or click a token)"),
+        Binding("tab", "next_pane", "next pane", tooltip="focus the next pane"),
+        Binding("shift+tab", "next_pane(-1)", "previous pane", show=False),
+        Binding("f", "fork", "fork", tooltip="fork the focused pane at the present step "
+                "into a new pane, with a recipe you give"),
+        Binding("e", "edit", "edit", tooltip="edit the focused pane's recipe (from the "
+                "next step on)"),
+        Binding("a", "add_pane", "add", tooltip="add a pane that decodes from the prompt "
+                "(it catches up at once)"),
+        Binding("x", "remove_pane", "remove", tooltip="remove the focused pane (asks first)"),
+        Binding("r", "rewind", "rewind", tooltip="rewind the session to the cursor"),
+        Binding("d", "toggle_draws", "draws", tooltip="shared draws on or off: the same "
+                "uniform number for every pane at a step"),
+        Binding("S", "reseed", "seed", tooltip="restart from the prompt with a new seed"),
+        Binding("w", "save", "save", tooltip="save the transcript (JSON Lines)"),
+        Binding("question_mark", "help", "help", key_display="?", tooltip="this help"),
+        Binding("q", "quit_app", "quit", tooltip="quit (asks to save an unsaved session)"),
+    ]
+
+    class EngineEvent(Message):
+        """A `StepperEvent` from the engine's worker thread."""
+
+        def __init__(self, event: StepperEvent) -> None:
+            super().__init__()
+            self.event = event
+
+    class LoadProgress(Message):
+        def __init__(self, stage: str, fraction: float | None) -> None:
+            super().__init__()
+            self.stage = stage
+            self.fraction = fraction
+
+    class LoadDone(Message):
+        def __init__(self, source: SessionSource | None, error: str = "") -> None:
+            super().__init__()
+            self.source = source
+            self.error = error
+
+    def __init__(self, source: SessionSource | SessionLoader, *, mono: bool = False,
+                 save_folder: Path | None = None) -> None:
+        super().__init__()
+        self.scheme = Scheme(mono)
+        if mono and not self.no_color:
+            self._filters.append(Monochrome())  # --mono: no colour anywhere, as NO_COLOR
+        self._loader = source if isinstance(source, SessionLoader) else None
+        self.source: SessionSource | None = None if self._loader else source
+        self.save_folder = save_folder
+        self.stepper: Stepper | None = None
+        self.view: SessionView | None = None
+        self.cursor = 0  # tokens shown in every pane
+        self.follow = True  # the cursor moves with new steps
+        self.version = 0  # counts changes to the session, for "unsaved"
+        self.saved_version = 0
+        self.busy: list[str] = []  # operations queued or under way
+        self.steps_per_second: float | None = None
+        self.frozen_rate: float | None = None  # tests: show this rate instead (0 = none)
+        self.error_message: str | None = None  # set when the model failed to load
+        self.redraw_due = False
+        self.focus_wanted: int | None = None  # a new pane to focus once it is mounted
+        self.grid = PaneGrid(self.scheme, id="panes")
+
+    # ----- building the screen -------------------------------------------------------
+
+    def compose(self) -> ComposeResult:
+        yield TopBar(id="top-bar")
+        if self._loader is not None:
+            yield LoadingPanel(self._loader.model_name, id="loading")
+        yield self.grid
+        yield Legend(self.scheme, id="legend")
+        yield KeyBar(id="keys")
+
+    def on_mount(self) -> None:
+        self.theme = "textual-dark"
+        if self._loader is not None:
+            self.redraw()
+            self._load_model(self._loader)
+        elif self.source is not None:
+            self._start(self.source)
+
+    def _start(self, source: SessionSource) -> None:
+        self.source = source
+        self.grid.prompt = source.prompt_text
+        self.view = source.first_view()
+        self.cursor = self.view.step
+        if source.engine is not None:
+            self.stepper = Stepper(source.engine, self._emit)
+            self._serve(self.stepper)
+        for panel in self.grid.screen.query(LoadingPanel):
+            panel.remove()
+        self.redraw()
+        self.call_after_refresh(self._focus_first_pane)
+
+    def _focus_first_pane(self) -> None:
+        panes = self.grid.panes()
+        if panes and not isinstance(self.focused, TokenPane):
+            panes[0].focus()
+
+    # ----- workers ------------------------------------------------------------------------
+
+    @work(thread=True, exclusive=True, exit_on_error=False, group="load")
+    def _load_model(self, loader: SessionLoader) -> None:
+        def progress(stage: str, fraction: float | None = None) -> None:
+            self.post_message(self.LoadProgress(stage, fraction))
+
+        try:
+            source = loader.load(progress)
+        except Exception as exc:  # noqa: BLE001 - any failure ends the app with one line
+            from tui.app.stepper import describe
+
+            self.post_message(self.LoadDone(None, describe(exc)))
+            return
+        self.post_message(self.LoadDone(source))
+
+    @work(thread=True, exclusive=True, exit_on_error=False, group="stepper")
+    def _serve(self, stepper: Stepper) -> None:
+        worker = get_current_worker()
+        stepper.serve(lambda: worker.is_cancelled)
+
+    def _emit(self, event: StepperEvent) -> None:
+        """Called on the worker thread: hand the event to the app's own thread."""
+        self.post_message(self.EngineEvent(event))
+
+    @on(LoadProgress)
+    def _load_progress(self, message: LoadProgress) -> None:
+        for panel in self.grid.screen.query(LoadingPanel):
+            panel.set_progress(message.stage, message.fraction)
+
+    @on(LoadDone)
+    def _load_done(self, message: LoadDone) -> None:
+        if message.source is None:
+            self.error_message = message.error
+            self.exit(return_code=2)
+            return
+        self._start(message.source)
+
+    @on(EngineEvent)
+    def _engine_event(self, message: EngineEvent) -> None:
+        event = message.event
+        if isinstance(event, Stepped):
+            self._take_view(event.view)
+            rate = 1.0 / max(event.seconds, 1e-6)
+            old = self.steps_per_second
+            self.steps_per_second = rate if old is None else old + RATE_SMOOTHING * (rate - old)
+        elif isinstance(event, OperationDone):
+            self._finish_operation(event.label)
+            self._take_view(event.view)
+            self.after_operation(event.label, event.result)
+        elif isinstance(event, Failed):
+            if event.label != "step":
+                self._finish_operation(event.label)
+            if event.view is not None:
+                self._take_view(event.view)
+            if event.label == "step":
+                text = f"a step failed: {event.message}. The session is paused and unchanged."
+            else:
+                text = f"{event.label} failed: {event.message}"
+            self.notify(text, severity="error", timeout=10, markup=False)
+        elif isinstance(event, RunChanged):
+            if not event.running and event.reason == STOPPED_ALL:
+                self.notify(event.reason, timeout=4, markup=False)
+        self.schedule_redraw()
+
+    def _finish_operation(self, label: str) -> None:
+        if label in self.busy:
+            self.busy.remove(label)
+
+    def _take_view(self, view: SessionView) -> None:
+        if self.view is not None and view == self.view:
+            return
+        self.view = view
+        self.version += 1
+        if self.follow:
+            self.cursor = view.step
+        self.cursor = min(self.cursor, view.step)
+
+    # ----- drawing ------------------------------------------------------------------------
+
+    def schedule_redraw(self) -> None:
+        """Redraw soon, at most every REDRAW_SECONDS, so fast steps cannot flood the UI."""
+        if not self.redraw_due:
+            self.redraw_due = True
+            self.set_timer(REDRAW_SECONDS, self.redraw)
+
+    def redraw(self) -> None:
+        self.redraw_due = False
+        view = self.view
+        rate = self.steps_per_second if self.frozen_rate is None else self.frozen_rate
+        running = self.stepper.running if self.stepper else False
+        state = BarState(
+            model=self.source.model_name if self.source else
+            (self._loader.model_name if self._loader else ""),
+            seed=view.seed if view else None,
+            shared_draws=view.shared_draws if view else None,
+            steps_per_second=rate, running=running, busy=", ".join(self.busy),
+            step=view.step if view else 0, cursor=self.cursor,
+            read_only=self.source is not None and self.source.engine is None,
+            loading=self.source is None)
+        self.grid.screen.query_one(TopBar).set_state(state)
+        if view is not None:
+            self.grid.sync(view, self.cursor)
+            widget = self.grid.pane_for(self.focus_wanted) if self.focus_wanted is not None \
+                else None
+            if widget is not None:
+                self.focus_wanted = None
+                self.call_after_refresh(widget.focus)
+        self.refresh_bindings()
+
+    # ----- helpers used by the actions ------------------------------------------------------
+
+    @property
+    def unsaved(self) -> bool:
+        has_text = self.view is not None and any(p.records for p in self.view.panes)
+        return has_text and self.version != self.saved_version
+
+    def focused_pane(self) -> TokenPane | None:
+        """The focused pane on the main screen (the first pane when none has focus)."""
+        focused = self.grid.screen.focused
+        if isinstance(focused, TokenPane):
+            return focused
+        panes = self.grid.panes()
+        return panes[0] if panes else None
+
+    def on_unmount(self) -> None:
+        if self.stepper is not None:
+            self.stepper.close()
+
+
+def make_app(scenario: str | None = None, *, model: str | None = None, seed: int | None = None,
+             mono: bool = False, dtype: str = "float32", allow_pickle: bool = False,
+             max_new_tokens: int | None = None, source: SessionSource | None = None,
+             save_folder: Path | None = None) -> LogitforkApp:
+    """The app on a scenario (by name or path; the default one when None), or on `source`.
+
+    Scenario errors raise `UserError` here, before any screen is drawn.
+    """
+    if source is not None:
+        return LogitforkApp(source, mono=mono, save_folder=save_folder)
+    from tui.scenario import find_scenario, load_scenario
+
+    loader = SessionLoader(load_scenario(find_scenario(scenario)), model=model, seed=seed,
+                           dtype=dtype, allow_pickle=allow_pickle, max_new_tokens=max_new_tokens)
+    return LogitforkApp(loader, mono=mono, save_folder=save_folder)

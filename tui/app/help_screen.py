@@ -1,0 +1,79 @@
+"""The help screen: every key with what it does, the colour scheme, and the caution."""
+
+from __future__ import annotations
+
+from rich.table import Table
+from rich.text import Text
+from textual.app import ComposeResult
+from textual.binding import Binding
+from textual.containers import VerticalScroll
+from textual.screen import ModalScreen
+from textual.widgets import Static
+
+from tui.app.colouring import FINAL_BANDS, FORCED_MARK, RANK_BANDS, Scheme
+
+CAUTION = ("Generated text is raw model output: it can be false, biased or offensive, and it "
+           "is not filtered. Check any setting chosen here on your own data before use.")
+
+INSPECT_KEYS = (
+    ("\u2191 \u2193", "choose a row of the top-20 table"),
+    ("enter", "force the chosen row's token at this step (asks first): the session rewinds "
+              "there and the pane goes on from that token"),
+    ("escape", "back to the panes"),
+)
+
+
+def keys_table(rows: list[tuple[str, str]]) -> Table:
+    """Keys in one column, what they do in the next (wrapped with a hanging indent)."""
+    table = Table.grid(padding=(0, 2))
+    table.add_column(no_wrap=True, style="bold")
+    table.add_column(ratio=1)
+    for key, what in rows:
+        table.add_row(Text(key), Text(what))
+    return table
+
+
+def scheme_text(scheme: Scheme) -> Text:
+    text = Text()
+    text.append_text(scheme.legend())
+    text.append("\n\n")
+    kind = "text style" if scheme.mono else "colour of the text"
+    text.append(f"The {kind} is the token's rank in the raw model distribution "
+                "(1 = the model's first choice): ")
+    text.append(", ".join(b.label for b in RANK_BANDS) + ".\n")
+    text.append("The background is the token's probability under the pane's final, truncated "
+                "distribution (the one it was drawn from): ")
+    text.append(", ".join(b.label for b in FINAL_BANDS))
+    text.append(" (none, a faint wash, a highlighter: the less sure the draw, the louder).\n")
+    text.append("Neighbouring tokens alternate between two close shades, so token boundaries "
+                "show. ")
+    text.append(FORCED_MARK, scheme.marker_style())
+    text.append(" marks a token forced from the inspect view.\n")
+    text.append("Status line: step, kept-set size and entropy H (nats) of the final "
+                "distribution at the last step shown, mean log-probability (raw) of the "
+                "chosen tokens, and why the pane stopped.")
+    return text
+
+
+class HelpScreen(ModalScreen[None]):
+    """Keys, colours and the caution. Escape (or ?) closes it."""
+
+    BINDINGS = [Binding("escape", "close", "close"), Binding("question_mark", "close", "close")]
+
+    def __init__(self, main_keys: list[tuple[str, str]], scheme: Scheme) -> None:
+        super().__init__(classes="dialog-screen")
+        self.main_keys = main_keys
+        self.scheme = scheme
+
+    def compose(self) -> ComposeResult:
+        with VerticalScroll(classes="dialog help"):
+            yield Static(Text("logitfork: keys", style="bold"))
+            yield Static(keys_table(self.main_keys))
+            yield Static(Text("In the inspect view", style="bold"))
+            yield Static(keys_table(list(INSPECT_KEYS)))
+            yield Static(Text("Colours", style="bold"))
+            yield Static(scheme_text(self.scheme))
+            yield Static(Text("\n" + CAUTION, style="bold"), id="caution")
+
+    def action_close(self) -> None:
+        self.dismiss(None)

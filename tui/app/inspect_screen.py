@@ -1,0 +1,253 @@
+"""The inspect view: one pane at one step, and the way to force another token there.
+
+It shows the context's tail and the chosen token with its `u`; the 20 most likely raw
+tokens (rank, the token made visible, raw and final probability, cumulative raw mass,
+kept or cut and which stage cut it); sparklines of entropy and kept-set size over the
+pane's steps; and the step under every pane's recipe. What needs the logits (the
+stage trace, the other recipes) is computed on a worker and filled in when ready.
+Choosing a row (Enter) asks, then closes the view with (pane, step, token) to force.
+"""
+
+from __future__ import annotations
+
+import math
+
+from rich.style import Style
+from rich.text import Text
+from textual import on, work
+from textual.app import ComposeResult
+from textual.binding import Binding
+from textual.containers import Container, Vertical, VerticalScroll
+from textual.message import Message
+from textual.screen import Screen
+from textual.widgets import DataTable, Sparkline, Static
+
+from tui.app.colouring import FORCED_MARK, Scheme
+from tui.app.confirm_dialog import ConfirmDialog
+from tui.app.key_bar import KeyBar
+from tui.app.safe_text import shown_line, shown_token
+from tui.app.source import SessionSource
+from tui.app.step_analysis import (RecipeRow, TopRow, format_prob, recipe_at, recipe_rows,
+                                   top_rows)
+from tui.app.stepper import describe
+from tui.app.token_pane import pane_text, prompt_tail
+from tui.engine import SessionView
+
+WIDE_COLUMNS = 110  # from this width on, the side panel sits beside the table
+
+
+class InspectScreen(Screen[tuple[int, int, int] | None]):
+    """Inspect `pane_id` at `step`; dismissed with a (pane, step, token) to force, or None."""
+
+    BINDINGS = [
+        Binding("escape", "close", "back"),
+        Binding("up", "move(-1)", "choose row", key_display="\u2191\u2193", priority=True),
+        Binding("down", "move(1)", "choose row", show=False, priority=True),
+        Binding("enter", "force_row", "force this token", key_display="\u23ce", priority=True),
+    ]
+
+    class Analysed(Message):
+        """The worker's results: the table with stage cuts, and the recipe rows."""
+
+        def __init__(self, rows: tuple[TopRow, ...], recipes: tuple[RecipeRow, ...] | None,
+                     note: str = "") -> None:
+            super().__init__()
+            self.rows = rows
+            self.recipes = recipes
+            self.note = note
+
+    def __init__(self, source: SessionSource, view: SessionView, pane_id: int, step: int,
+                 scheme: Scheme) -> None:
+        super().__init__(classes="inspect")
+        self.source = source
+        self.view = view
+        self.pane = next(p for p in view.panes if p.id == pane_id)
+        self.step = step
+        self.record = self.pane.records[step]
+        self.scheme = scheme
+        self.rows: tuple[TopRow, ...] = top_rows(self.record)
+        self.recipes: tuple[RecipeRow, ...] | None = None
+        self.analysed = False
+
+    # ----- layout -------------------------------------------------------------------
+
+    def compose(self) -> ComposeResult:
+        yield Static(self._title(), id="inspect-title")
+        yield VerticalScroll(Static(self._context_text(), id="inspect-context-text"),
+                             id="inspect-context")
+        yield Static(self._chosen_line(), id="inspect-chosen")
+        with Container(id="inspect-body"):
+            yield DataTable(id="top-table", cursor_type="row", zebra_stripes=True)
+            with Container(id="inspect-side"):
+                with Vertical(id="inspect-sparks"):
+                    yield Static(id="entropy-label")
+                    yield Sparkline([r.raw_entropy for r in self.pane.records], id="entropy-spark")
+                    yield Static(id="kept-label")
+                    yield Sparkline([math.log10(max(r.kept, 1)) for r in self.pane.records],
+                                    id="kept-spark")
+                with Vertical(id="inspect-recipes"):
+                    yield Static(Text("this step under every recipe", style="bold"))
+                    yield DataTable(id="recipe-table", cursor_type="none", show_cursor=False)
+        yield KeyBar(id="inspect-keys")
+
+    def on_mount(self) -> None:
+        table = self.query_one("#top-table", DataTable)
+        table.add_columns("#", "token", "raw", "final", "cum raw", "kept", "cut by")
+        self._fill_table()
+        recipes = self.query_one("#recipe-table", DataTable)
+        recipes.add_columns("pane", "kept", "p(chosen)", "recipe")
+        self._fill_recipes("working\u2026")
+        self._fill_spark_labels()
+        self.query_one("#inspect-context", VerticalScroll).scroll_end(animate=False,
+                                                                      x_axis=False)
+        table.focus()
+        self._apply_width(self.size.width)
+        self._analyse()
+
+    def on_resize(self) -> None:
+        self._apply_width(self.size.width)
+
+    def _apply_width(self, width: int) -> None:
+        self.set_class(width >= WIDE_COLUMNS, "-wide")
+
+    # ----- content --------------------------------------------------------------------
+
+    def _title(self) -> Text:
+        text = Text("Inspect ", style="bold")
+        text.append(shown_line(self.pane.name), style="bold")
+        text.append(f"  step {self.step + 1} of {len(self.pane.records)}")
+        text.append("  recipe ")
+        text.append(shown_line(recipe_at(self.pane, self.step)), style="italic")
+        return text
+
+    def _context_text(self) -> Text:
+        prompt = prompt_tail(self.source.prompt_text, 240)
+        text = pane_text(self.pane.records[: self.step], self.scheme, prompt)
+        rec = self.record
+        style = self.scheme.token_style(rec.rank, rec.final_prob, forced=rec.forced)
+        if rec.forced:
+            text.append(FORCED_MARK, self.scheme.marker_style())
+        text.append(shown_token(rec.text), style + Style(reverse=True))
+        return text
+
+    def _chosen_line(self) -> Text:
+        rec = self.record
+        text = Text("chosen ", style="bold")
+        text.append(shown_token(rec.text), self.scheme.rank_style(rec.rank))
+        text.append(f"  id {rec.token_id}  u {rec.u:.5f}  rank {rec.rank}  "
+                    f"raw {format_prob(rec.raw_prob)}  final {format_prob(rec.final_prob)}  "
+                    f"kept {rec.kept}")
+        if rec.forced:
+            text.append("  ")
+            text.append(FORCED_MARK + " forced", self.scheme.marker_style())
+        return text
+
+    def _fill_table(self) -> None:
+        table = self.query_one("#top-table", DataTable)
+        cursor = table.cursor_row
+        table.clear()
+        for row in self.rows:
+            token_style = self.scheme.rank_style(row.rank)
+            rank = Text(("\u25b6" if row.chosen else "") + str(row.rank),
+                        style="bold" if row.chosen else "")
+            kept = Text("kept" if row.kept else "cut", style="" if row.kept else "dim")
+            cut = row.cut_by if row.cut_by else ("" if row.kept or self.analysed else "\u2026")
+            table.add_row(rank, Text(shown_token(row.text), token_style),
+                          Text(format_prob(row.raw_prob), justify="right"),
+                          Text(format_prob(row.final_prob), justify="right"),
+                          Text(format_prob(row.cum_raw), justify="right"),
+                          kept, Text(shown_line(cut), style="italic"),
+                          key=str(row.token_id))
+        if self.rows:
+            table.move_cursor(row=min(max(cursor, 0), len(self.rows) - 1))
+
+    def _fill_recipes(self, note: str = "") -> None:
+        table = self.query_one("#recipe-table", DataTable)
+        table.clear()
+        if self.recipes is None:
+            table.add_row(Text(note, style="italic"), "", "", "")
+            return
+        for row in self.recipes:
+            name = Text(shown_line(row.name), style="bold" if row.own else "")
+            if row.error:
+                table.add_row(name, "", Text("error", style="bold"), Text(shown_line(row.error)))
+                continue
+            p = Text(format_prob(row.chosen_prob), justify="right",
+                     style="" if row.chosen_prob > 0 else "bold")
+            table.add_row(name, Text(str(row.kept), justify="right"), p,
+                          Text(shown_line(row.recipe), style="dim"))
+
+    def _fill_spark_labels(self) -> None:
+        rec = self.record
+        ent = [r.raw_entropy for r in self.pane.records]
+        kept = [r.kept for r in self.pane.records]
+        self.query_one("#entropy-label", Static).update(Text(
+            f"raw entropy (nats): here {rec.raw_entropy:.2f}, final {abs(rec.final_entropy):.2f}; "
+            f"range {min(ent):.2f}-{max(ent):.2f}"))
+        self.query_one("#kept-label", Static).update(Text(
+            f"kept-set size (log scale): here {rec.kept}; range {min(kept)}-{max(kept)}"))
+
+    # ----- the worker -------------------------------------------------------------------
+
+    @work(thread=True, exclusive=True, exit_on_error=False, group="inspect")
+    def _analyse(self) -> None:
+        """Stage cuts and the other recipes need the logits: maybe a forward pass."""
+        source, pane, step = self.source, self.pane, self.step
+        try:
+            logits = source.logits_at(pane.id, step)
+            history = source.history(pane.id, step)
+            if logits is None or history is None:
+                self.post_message(self.Analysed(top_rows(self.record), None,
+                                                "needs the model (read-only session)"))
+                return
+            trace = source.trace_at(pane.id, step)
+            rows = top_rows(self.record, trace)
+            recipes = recipe_rows(logits, history, self.record, pane, self.view.panes)
+        except Exception as exc:  # noqa: BLE001 - shown in the view
+            self.post_message(self.Analysed(self.rows, None, f"failed: {describe(exc)}"))
+            return
+        self.post_message(self.Analysed(rows, recipes))
+
+    @on(Analysed)
+    def _analysed(self, message: Analysed) -> None:
+        self.rows, self.recipes, self.analysed = message.rows, message.recipes, True
+        self._fill_table()
+        self._fill_recipes(message.note)
+
+    # ----- actions ------------------------------------------------------------------------
+
+    def action_close(self) -> None:
+        self.dismiss(None)
+
+    def action_move(self, delta: int) -> None:
+        table = self.query_one("#top-table", DataTable)
+        table.move_cursor(row=max(0, min(len(self.rows) - 1, table.cursor_row + delta)))
+
+    @on(DataTable.RowSelected, "#top-table")
+    def _row_selected(self, event: DataTable.RowSelected) -> None:
+        event.stop()
+        self.action_force_row()
+
+    def action_force_row(self) -> None:
+        if self.source.engine is None:
+            self.notify("a read-only session cannot be changed", markup=False)
+            return
+        table = self.query_one("#top-table", DataTable)
+        if not 0 <= table.cursor_row < len(self.rows):
+            return
+        row = self.rows[table.cursor_row]
+        if row.chosen:
+            self.notify("that is the token chosen here already", markup=False)
+            return
+        forward = f"; every pane runs again to step {self.view.step}" if self.view.step > \
+            self.step + 1 else ""
+        question = (f"Force {shown_token(row.text)} (rank {row.rank}) at step {self.step + 1} "
+                    f"of {self.pane.name}? The session rewinds to that step{forward}; the "
+                    "other panes draw the same numbers and write the same text again.")
+        token = row.token_id
+
+        def done(answer: str | None) -> None:
+            if answer == "y":
+                self.dismiss((self.pane.id, self.step, token))
+
+        self.app.push_screen(ConfirmDialog(question, [("y", "force"), ("n", "cancel")]), done)

@@ -1,0 +1,77 @@
+"""The top bar: model, seed, shared draws, steps per second, running or paused, cursor."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+from rich.text import Text
+from textual.widgets import Static
+
+from tui.app.safe_text import shown_line
+
+
+@dataclass(frozen=True)
+class BarState:
+    """Everything the top bar shows (None where not known yet)."""
+
+    model: str = ""
+    seed: int | None = None
+    shared_draws: bool | None = None
+    steps_per_second: float | None = None
+    running: bool = False
+    busy: str = ""  # an operation under way, e.g. "forking"
+    step: int = 0
+    cursor: int = 0
+    read_only: bool = False
+    loading: bool = False
+
+
+def bar_text(state: BarState) -> Text:
+    """The bar as one line of text; the most important facts come first."""
+    text = Text()
+    if state.loading:
+        text.append(" \u25cc loading ", style="bold reverse")
+    elif state.read_only:
+        text.append(" \u25a0 read-only ", style="bold reverse")
+    elif state.running:
+        text.append(" \u25b6 running ", style="bold #0b0c0e on #009E73")
+    else:
+        text.append(" \u2016 paused ", style="bold #0b0c0e on #F0E442")
+    text.append(" ")
+    if state.busy:
+        text.append(f"{state.busy}\u2026 ", style="italic")
+    if state.model:
+        text.append(shown_line(state.model), style="bold")
+    if state.seed is not None:
+        text.append(f"  seed {state.seed}")
+    if state.shared_draws is not None:
+        text.append(f"  shared draws {'on' if state.shared_draws else 'off'}")
+    if state.loading:
+        return text
+    rate = state.steps_per_second
+    text.append(f"  {rate:.1f} steps/s" if rate else "  - steps/s")
+    where = f"step {state.step}"
+    if state.cursor != state.step:
+        where = f"cursor {state.cursor}/{state.step}"
+    text.append(f"  {where}", style="bold")
+    return text
+
+
+class TopBar(Static):
+    """One line at the top of the main screen."""
+
+    def __init__(self, id: str | None = None) -> None:
+        super().__init__(Text(), id=id)
+        self._state = BarState(loading=True)
+
+    @property
+    def state(self) -> BarState:
+        return self._state
+
+    def set_state(self, state: BarState) -> None:
+        if state != self._state:
+            self._state = state
+            self.update(bar_text(state))
+
+    def on_mount(self) -> None:
+        self.update(bar_text(self._state))
