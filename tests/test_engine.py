@@ -21,11 +21,20 @@ from tui.scenario import PaneSpec
 PROMPT = "The lamplighter of Orrin Bay climbed the"
 
 
-@pytest.fixture(scope="module")
-def lm(tiny_model_dir):
+@pytest.fixture(scope="module", params=["generic", "lean"])
+def lm(request, tiny_model_dir):
+    """The tiny model, once on each forward path (the engine must not care which)."""
     from tui.models import load_model
 
-    return load_model(str(tiny_model_dir))
+    loaded = load_model(str(tiny_model_dir))
+    loaded.forward = request.param
+    return loaded
+
+
+def runner_for(lm):
+    from tui.lean_llama import LeanRunner
+
+    return Runner(lm.model) if lm.forward == "generic" else LeanRunner(lm.model)
 
 
 def make(lm, recipes, *, seed=5, shared=True, max_new=30, stop=(), max_context=None,
@@ -33,7 +42,7 @@ def make(lm, recipes, *, seed=5, shared=True, max_new=30, stop=(), max_context=N
     ids = lm.encode_prompt(PROMPT, None)
     panes = [PaneSpec(f"p{i}", r, None if seeds is None else seeds[i])
              for i, r in enumerate(recipes)]
-    return Engine(Runner(lm.model), lm.decode, ids, panes, seed=seed, shared_draws=shared,
+    return Engine(runner_for(lm), lm.decode, ids, panes, seed=seed, shared_draws=shared,
                   max_new_tokens=max_new, stop_strings=stop, eos_ids=(),
                   max_context=max_context or lm.max_context)
 

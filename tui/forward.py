@@ -1,18 +1,26 @@
 """The model side of a step: prefill, one batched decode step, and KV-cache rows.
 
-`Runner` hides which forward path is used. The generic path calls the transformers
-model with a `DynamicCache`; a cache here is our own plain value, `KV`: one
-(keys, values) pair of tensors per layer, each (B, H, L, D), so that the engine can
-pick, copy, park, crop and join batch rows without knowing the model.
+A runner hides which forward path is used; `make_runner(model)` picks one. The generic
+`Runner` calls the transformers model with a `DynamicCache`; the lean one
+(`tui.lean_llama.LeanRunner`) runs llama-family models with fused weights and a cache
+written in place. A cache here is our own plain value, `KV`: one (keys, values) pair of
+tensors per layer, each (B, H, C, D) with the first `length` of C positions in use, so
+that the engine can pick, copy, park, crop and join batch rows without knowing the model.
 No Textual, no numpy math: tensors in, tensors out.
 """
 
 from __future__ import annotations
 
+import os
 from dataclasses import dataclass, field
-from typing import Any, Sequence
+from typing import TYPE_CHECKING, Any, Sequence
 
 import torch
+
+if TYPE_CHECKING:
+    from tui.lean_llama import LeanRunner
+
+FORWARD_ENV = "LOGITFORK_FORWARD"  # auto (default), lean or generic
 
 
 @dataclass(eq=False)
@@ -109,6 +117,8 @@ class KV:
 class Runner:
     """Runs a transformers causal LM for the engine (the generic forward path)."""
 
+    kind = "generic"
+
     def __init__(self, model: Any) -> None:
         self.model = model
         self.config = model.config
@@ -121,8 +131,8 @@ class Runner:
 
         x = torch.as_tensor([list(r) for r in ids], dtype=torch.long)  # (B, T)
         cache = DynamicCache(config=self.config)
-        out = self.model(input_ids=x, past_key_values=cache, use_cache=True, logits_to_keep=1)
-        return _to_kv(out.past_key_values), out.logits[:, -1, :].float()
+        out = self.model(input_ids=x, cache=cache, use_cache=True, logits_to_keep=1)
+        return _to_kv(cache), out.logits[:, -1, :].float()
 
     @torch.inference_mode()
     def extend(self, kv: KV, ids: Sequence[Sequence[int]]) -> tuple[KV, torch.Tensor]:
@@ -133,10 +143,10 @@ class Runner:
         start = kv.length
         cache = DynamicCache(ddp_cache_data=list(kv.views()), config=self.config)
         pos = torch.arange(start, start + x.shape[1]).unsqueeze(0).expand(x.shape[0], -1)
-        out = self.model(input_ids=x, past_key_values=cache, use_cache=True,
+        out = self.model(input_ids=x, cache=cache, use_cache=True,
                          position_ids=pos, cache_position=torch.arange(start, start + x.shape[1]),
                          logits_to_keep=1)
-        return _to_kv(out.past_key_values), out.logits[:, -1, :].float()
+        return _to_kv(cache), out.logits[:, -1, :].float()
 
     def step(self, kv: KV, tokens: Sequence[int]) -> tuple[KV, torch.Tensor]:
         """One decode step: one new token per row. Returns the cache and logits (B, V)."""
@@ -147,6 +157,28 @@ class Runner:
         """Logits (T, V) of a whole sequence, no cache kept: for log-likelihoods and inspect."""
         out = self.model(input_ids=torch.as_tensor([list(ids)], dtype=torch.long), use_cache=False)
         return out.logits[0].float()
+
+
+def make_runner(model: Any) -> "Runner | LeanRunner":
+    """The fastest runner that supports `model`: the lean llama path, else the generic one.
+
+    `LOGITFORK_FORWARD=generic` forces the generic path; `=lean` insists on the lean
+    one (a UserError says why a model cannot take it); unset or `auto` chooses.
+    """
+    from tui.errors import UserError
+    from tui.lean_llama import LeanRunner, lean_refusal
+
+    choice = os.environ.get(FORWARD_ENV, "auto").strip().lower() or "auto"
+    if choice not in ("auto", "lean", "generic"):
+        raise UserError(f"{FORWARD_ENV}: must be auto, lean or generic, got {choice!r}")
+    if choice == "generic":
+        return Runner(model)
+    reason = lean_refusal(model)
+    if reason is None:
+        return LeanRunner(model)
+    if choice == "lean":
+        raise UserError(f"{FORWARD_ENV}=lean: {reason}; unset it to use the generic path")
+    return Runner(model)
 
 
 def _to_kv(cache: Any) -> KV:

@@ -1,0 +1,123 @@
+"""`make bench`: how fast a step is, on the generic and the lean forward path, and why.
+
+    python -m tui.bench [--quick] [--cold] [--model NAME] [--threads N]
+
+Prints one plain-text table, one row per measurement. Every ratio is computed from
+numbers measured in the same run with the variants interleaved (timings on this shared
+2-core machine swing 20-30% between runs), and each target from issue 2 gets PASS or
+MISS beside it. Sections: parity of the lean path on the real model, decode step time
+(1/2/4/8 panes, context ~50 and ~400), prefill, matmul layouts tried, threads, the
+4-recipe run against transformers' generate(), the recipe math's share of a step,
+bfloat16's deviation and speed, and start-up time (cold only with --cold: ~40 s).
+"""
+
+from __future__ import annotations
+
+import argparse
+import sys
+import time
+from typing import Sequence
+
+from tui.bench_step import Row
+
+PANES = (1, 2, 4, 8)
+
+
+def parse_args(argv: Sequence[str] | None) -> argparse.Namespace:
+    p = argparse.ArgumentParser(prog="python -m tui.bench", description=__doc__.split("\n")[0])
+    p.add_argument("--quick", action="store_true", help="fewer steps and rounds (about a minute)")
+    p.add_argument("--cold", action="store_true", help="also time a first GGUF conversion (~40 s)")
+    p.add_argument("--model", default=None, help="a catalogue name or local folder (default: the embedded model)")
+    p.add_argument("--threads", type=int, default=None, help="torch threads (default: torch's choice)")
+    args = p.parse_args(argv)
+    if args.threads is not None and args.threads < 1:
+        p.error(f"--threads: must be at least 1, got {args.threads}")
+    return args
+
+
+def render(rows: Sequence[Row]) -> str:
+    """A plain-text table with aligned columns."""
+    head = Row("section", "measurement", "value", "note", "target", "")
+    cells = [(r.section, r.name, r.value, r.target, r.status, r.note) for r in (head, *rows)]
+    widths = [max(len(c[i]) for c in cells) for i in range(5)]
+    lines = []
+    for i, c in enumerate(cells):
+        lines.append("  ".join(c[j].ljust(widths[j]) for j in range(5)) + "  " + c[5])
+        if i == 0:
+            lines.append("-" * (sum(widths) + 2 * 5 + 20))
+    return "\n".join(line.rstrip() for line in lines)
+
+
+def parity_rows(lm: object, runners: dict, prompt: list[int]) -> list[Row]:
+    """The lean path's logits against transformers' forward on the real model (float32)."""
+    import torch
+
+    ids = prompt[:40]
+    with torch.inference_mode():
+        ref = lm.model(input_ids=torch.tensor([ids])).logits[0].float()  # (T, V)
+    lean = runners["lean"]
+    kv, logits = lean.prefill([ids[:20]])
+    worst = float((logits[0] - ref[19]).abs().max())
+    for t in range(20, len(ids)):
+        kv, logits = lean.step(kv, [ids[t]])
+        worst = max(worst, float((logits[0] - ref[t]).abs().max()))
+    return [Row("parity", f"lean vs transformers forward, prefill + {len(ids) - 20} steps",
+                f"{worst:.1e}", "max |delta logit|", "<= 1e-4", "PASS" if worst <= 1e-4 else "MISS")]
+
+
+def main(argv: Sequence[str] | None = None) -> int:
+    args = parse_args(argv)
+    import torch
+
+    from tui import bench_runs, bench_step
+    from tui.forward import Runner
+    from tui.lean_llama import LeanRunner, lean_refusal
+    from tui.models import DEFAULT_MODEL, load_model
+    from tui.scenario import find_scenario, load_scenario
+
+    if args.threads:
+        torch.set_num_threads(args.threads)
+    started = time.perf_counter()
+    lm = load_model(args.model or DEFAULT_MODEL)
+    reason = lean_refusal(lm.model)
+    if reason is not None:
+        print(f"error: the lean path cannot run {lm.name}: {reason}", file=sys.stderr)
+        return 2
+    runners = {"generic": Runner(lm.model), "lean": LeanRunner(lm.model)}
+    scenario = load_scenario(find_scenario("harbour-town"))
+    prompt = lm.encode_prompt(scenario.prompt, scenario.message_dicts)
+    quick = args.quick
+    lengths = (50, 400)
+    contexts = {n: bench_step.context_ids(prompt, n) for n in lengths}
+    steps, rounds = (4, 2) if quick else (8, 3)
+    rows: list[Row] = [Row("setup", "model, threads, lean matmuls", lm.name,
+                           f"{torch.get_num_threads()} threads, "
+                           f"{'oneDNN packed' if runners['lean'].packed else 'F.linear'}")]
+
+    def section(name: str, make: object) -> None:
+        print(f"... {name}", file=sys.stderr, flush=True)
+        rows.extend(make())  # type: ignore[operator]
+
+    section("parity", lambda: parity_rows(lm, runners, contexts[50]))
+    grid: dict = {}
+    section("decode steps", lambda: grid.update(
+        bench_step.step_grid(runners, contexts, PANES, steps, rounds)) or bench_step.step_rows(grid, lengths, PANES))
+    section("prefill", lambda: bench_step.prefill_rows(runners, contexts, rounds))
+    if not quick:
+        section("matmul layouts", lambda: bench_step.matmul_rows(lm.model, rounds))
+        section("threads", lambda: bench_step.thread_rows(runners["lean"], contexts[50], steps, rounds))
+    tokens = 12 if quick else 32
+    section("generate() vs engine", lambda: bench_runs.run_rows(lm, runners, prompt, tokens, 1 if quick else 2))
+    section("recipe math", lambda: bench_runs.recipe_share_rows(
+        lm, runners["lean"], prompt, grid[("lean", 50, 4)], rounds))
+    section("bfloat16", lambda: bench_step.bf16_rows(lm.model, runners["lean"], prompt, 50, rounds, steps))
+    section("start", lambda: bench_runs.start_rows(args.cold, args.model))
+    print(render(rows))
+    misses = sum(r.status == "MISS" for r in rows)
+    print(f"\n{len(rows)} rows, {sum(r.status == 'PASS' for r in rows)} targets met, {misses} missed; "
+          f"{time.perf_counter() - started:.0f} s")
+    return 0
+
+
+if __name__ == "__main__":
+    raise SystemExit(main())

@@ -1,0 +1,274 @@
+"""A lean forward path for llama-family causal LMs (Llama, Qwen2), same maths as transformers.
+
+The generic path (`tui.forward.Runner`) calls the transformers model: about 6,300 small
+torch ops per decode step, and a `DynamicCache` that concatenates every step. This path
+runs the same computation with everything prepared once:
+
+- q/k/v fused into one weight, gate/up into another: one matmul each;
+- every weight packed once for oneDNN (`torch.ops.mkldnn`), whose fp32 kernels run several
+  times faster than torch's default at 2-8 rows on this CPU; plain `F.linear` otherwise;
+- rotary cos/sin tables precomputed per position;
+- a preallocated KV cache written in place (ownership rule: `tui.forward.KV`);
+- SDPA attention over the cache; at decode the query heads of a group share one kv head
+  by being folded into query rows, so no kv head is ever repeated.
+
+About 30 ops per layer. Reference: transformers 5.24.0 `models/llama/modeling_llama.py`
+and `models/qwen2/modeling_qwen2.py`; tests/test_forward.py holds logits to 1e-4.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from types import SimpleNamespace
+from typing import Any, Sequence
+
+import torch
+import torch.nn.functional as F
+
+from tui.forward import KV, WriteMark
+
+SUPPORTED_MODELS = {"llama": "LlamaForCausalLM", "qwen2": "Qwen2ForCausalLM"}
+STATIC_ROPE = ("default", "linear", "llama3")  # inv_freq fixed at load; dynamic/longrope/yarn refused
+CACHE_BUCKET = 256  # cache capacity grows in steps of this many positions
+PLAIN_ROWS = 16  # from this many rows on (prefill), the model's own weights and F.linear
+
+
+def lean_refusal(model: Any) -> str | None:
+    """Why the lean path cannot run `model`, or None when it can."""
+    cfg = getattr(model, "config", None)
+    kind = getattr(cfg, "model_type", None)
+    if kind not in SUPPORTED_MODELS or type(model).__name__ != SUPPORTED_MODELS[kind]:
+        return f"{type(model).__name__} ({kind}) is not a llama-family causal LM"
+    if getattr(cfg, "hidden_act", None) != "silu":
+        return f"hidden_act {cfg.hidden_act!r} is not silu"
+    rope = getattr(cfg, "rope_parameters", None) or {}
+    if "rope_type" not in rope:
+        return "per-layer rope parameters are not supported"
+    if rope["rope_type"] not in STATIC_ROPE:
+        return f"rope type {rope['rope_type']!r} is not supported"
+    if "sliding_attention" in (getattr(cfg, "layer_types", None) or ()):
+        return "sliding-window attention is not supported"
+    weight = model.get_input_embeddings().weight
+    if weight.device.type != "cpu" or not weight.dtype.is_floating_point:
+        return f"weights on {weight.device} in {weight.dtype}: the lean path runs float weights on the CPU"
+    return None
+
+
+class PackedLinear:
+    """Linears that read the same input, as one: y = x [W1; W2; ...]^T + [b1; b2; ...] (+ residual).
+
+    Few rows (decode) run one matmul on the fused weight, packed once for oneDNN when
+    `packed`. Many rows (prefill, whole-sequence logits) run the model's own weights
+    with F.linear, the kernels transformers uses, so those logits match it exactly.
+    Unpacked, the model's weights become views of the fused one: no extra memory.
+    """
+
+    def __init__(self, linears: Sequence[Any], packed: bool) -> None:
+        weights = [lin.weight.detach() for lin in linears]
+        self.parts = tuple((w, lin.bias) for w, lin in zip(weights, linears))  # shared with the model
+        self.bias = _cat_bias(linears)
+        self.packed = packed
+        fused = weights[0] if len(weights) == 1 else torch.cat(weights)  # (sum out, in)
+        if packed:
+            self.weight = torch.ops.mkldnn._reorder_linear_weight(fused.contiguous())
+        else:
+            self.weight = fused
+            at = 0
+            for lin, w in zip(linears, weights):  # the model now reads views of `fused`
+                lin.weight.data = fused[at:at + w.shape[0]]
+                at += w.shape[0]
+
+    def __call__(self, x: torch.Tensor, residual: torch.Tensor | None = None) -> torch.Tensor:
+        # x: (N, in), residual: (N, out) -> (N, out)
+        if self.packed and x.shape[0] < PLAIN_ROWS:
+            if residual is None:
+                return torch.ops.mkldnn._linear_pointwise(x, self.weight, self.bias, "none", [], "")
+            return torch.ops.mkldnn._linear_pointwise.binary(x, residual, self.weight, self.bias, "add")
+        if self.packed:
+            y = torch.cat([F.linear(x, w, b) for w, b in self.parts], dim=-1)
+        else:
+            y = F.linear(x, self.weight, self.bias)
+        return y if residual is None else residual + y
+
+
+def _cat_bias(linears: Sequence[Any]) -> torch.Tensor | None:
+    """The fused bias (zeros where a part has none), or None when no part has one."""
+    if all(lin.bias is None for lin in linears):
+        return None
+    return torch.cat([lin.bias.detach() if lin.bias is not None
+                      else torch.zeros(lin.weight.shape[0], dtype=lin.weight.dtype) for lin in linears])
+
+
+def onednn_works(dtype: torch.dtype) -> bool:
+    """Is oneDNN's packed linear present here and does it agree with F.linear?"""
+    try:
+        if not torch.backends.mkldnn.is_available():
+            return False
+        gen = torch.Generator().manual_seed(0)
+        w = torch.randn(96, 64, generator=gen).to(dtype)
+        x = torch.randn(3, 64, generator=gen).to(dtype)
+        got = PackedLinear([SimpleNamespace(weight=w, bias=None)], packed=True)(x).float()
+        return bool(torch.allclose(got, F.linear(x, w).float(), rtol=1e-2, atol=1e-2))
+    except (RuntimeError, AttributeError, NotImplementedError):
+        return False
+
+
+@dataclass(frozen=True)
+class LayerWeights:
+    """One decoder layer's weights, fused and packed."""
+
+    attn_norm: torch.Tensor  # (E,)
+    qkv: PackedLinear  # E -> (Hq + 2 Hkv) D
+    out: PackedLinear  # Hq D -> E
+    mlp_norm: torch.Tensor  # (E,)
+    gate_up: PackedLinear  # E -> 2 I
+    down: PackedLinear  # I -> E
+
+
+class LeanRunner:
+    """The engine's Runner interface (prefill/extend/step/logits_of) on the lean path."""
+
+    kind = "lean"
+
+    def __init__(self, model: Any, packed: bool | None = None) -> None:
+        reason = lean_refusal(model)
+        if reason is not None:
+            raise ValueError(f"lean path: {reason}")
+        cfg = model.config
+        self.model = model
+        self.config = cfg
+        body = model.model
+        self.dtype = body.embed_tokens.weight.dtype
+        self.packed = onednn_works(self.dtype) if packed is None else packed
+        self.n_heads = cfg.num_attention_heads
+        self.n_kv = cfg.num_key_value_heads
+        self.head_dim = getattr(cfg, "head_dim", None) or cfg.hidden_size // self.n_heads
+        self.hidden = cfg.hidden_size
+        self.scale = self.head_dim ** -0.5
+        self.eps = float(body.norm.variance_epsilon)
+        self.embed = body.embed_tokens.weight.detach()  # (V, E)
+        self.layers = tuple(self._layer(layer) for layer in body.layers)
+        self.final_norm = body.norm.weight.detach()
+        head = model.get_output_embeddings()
+        self.lm_head = PackedLinear([head], self.packed)  # E -> V
+        self.vocab_size = int(head.weight.shape[0])
+        rotary = body.rotary_emb  # transformers' own inv_freq, so rope scaling matches it
+        self.inv_freq = rotary.inv_freq.detach().float()  # (D/2,)
+        self.rope_scale = float(rotary.attention_scaling)
+        self.cos = self.sin = torch.empty(0, self.head_dim, dtype=self.dtype)
+        self._rope_tables(min(int(getattr(cfg, "max_position_embeddings", 4096) or 4096), 4096))
+
+    def _layer(self, layer: Any) -> LayerWeights:
+        att, mlp = layer.self_attn, layer.mlp
+        return LayerWeights(
+            attn_norm=layer.input_layernorm.weight.detach(),
+            qkv=PackedLinear([att.q_proj, att.k_proj, att.v_proj], self.packed),
+            out=PackedLinear([att.o_proj], self.packed),
+            mlp_norm=layer.post_attention_layernorm.weight.detach(),
+            gate_up=PackedLinear([mlp.gate_proj, mlp.up_proj], self.packed),
+            down=PackedLinear([mlp.down_proj], self.packed),
+        )
+
+    def _rope_tables(self, n: int) -> None:
+        """cos and sin (n, D) as transformers computes them; sin's first half negated."""
+        pos = torch.arange(n, dtype=torch.float32)
+        freqs = pos[:, None] * self.inv_freq  # (n, D/2)
+        emb = torch.cat((freqs, freqs), dim=-1)  # (n, D)
+        half = self.head_dim // 2
+        sign = torch.cat((-torch.ones(half), torch.ones(half)))  # rotate_half(x) = roll(x) * sign
+        self.cos = (emb.cos() * self.rope_scale).to(self.dtype)
+        self.sin = (emb.sin() * self.rope_scale * sign).to(self.dtype)
+
+    # ----- the Runner interface -----------------------------------------------------
+
+    @torch.inference_mode()
+    def prefill(self, ids: Sequence[Sequence[int]]) -> tuple[KV, torch.Tensor]:
+        """Run whole equal-length sequences; return their cache and last logits (B, V)."""
+        return self.extend(KV(), ids)
+
+    @torch.inference_mode()
+    def extend(self, kv: KV, ids: Sequence[Sequence[int]]) -> tuple[KV, torch.Tensor]:
+        """Feed equal-length token blocks (B, T) after an existing cache of B rows."""
+        x = torch.as_tensor([list(r) for r in ids], dtype=torch.long)  # (B, T)
+        kv, h = self._forward(x, kv)
+        return kv, self._logits(h[:, -1]).float()  # (B, V)
+
+    def step(self, kv: KV, tokens: Sequence[int]) -> tuple[KV, torch.Tensor]:
+        """One decode step: one new token per row. Returns the cache and logits (B, V)."""
+        return self.extend(kv, [[t] for t in tokens])
+
+    @torch.inference_mode()
+    def logits_of(self, ids: Sequence[int]) -> torch.Tensor:
+        """Logits (T, V) of a whole sequence, no cache kept: for log-likelihoods and inspect."""
+        _, h = self._forward(torch.as_tensor([list(ids)], dtype=torch.long), KV())
+        return self._logits(h[0]).float()
+
+    # ----- the model -------------------------------------------------------------------
+
+    def _forward(self, ids: torch.Tensor, kv: KV) -> tuple[KV, torch.Tensor]:
+        """Run tokens (B, T) after `kv`; return the grown cache and final hidden (B, T, E)."""
+        B, T = ids.shape
+        if kv.rows and kv.rows != B:
+            raise ValueError(f"the cache has {kv.rows} rows but {B} token rows were given")
+        start, end = kv.length, kv.length + T
+        kv = self._room(kv, B, T)
+        if end > self.cos.shape[0]:
+            self._rope_tables(max(end, 2 * self.cos.shape[0]))
+        cos, sin = self.cos[start:end], self.sin[start:end]  # (T, D)
+        Hq, Hkv, D = self.n_heads, self.n_kv, self.head_dim
+        x = F.embedding(ids, self.embed).view(B * T, self.hidden)  # (BT, E)
+        for w, (keys, values) in zip(self.layers, kv.layers):
+            # attention: fused q/k/v, rotary on q and k together, cache written in place
+            h = F.rms_norm(x, (self.hidden,), w.attn_norm, self.eps)  # (BT, E)
+            qkv = w.qkv(h).view(B, T, Hq + 2 * Hkv, D).transpose(1, 2)  # (B, Hq+2Hkv, T, D)
+            qk = qkv[:, :Hq + Hkv]
+            qk = qk * cos + qk.roll(D // 2, dims=-1) * sin  # (B, Hq+Hkv, T, D)
+            keys[:, :, start:end] = qk[:, Hq:]
+            values[:, :, start:end] = qkv[:, Hq + Hkv:]
+            att = self._attend(qk[:, :Hq], keys[:, :, :end], values[:, :, :end], start)  # (BT, Hq D)
+            x = w.out(att, residual=x)  # (BT, E)
+            # MLP: fused gate/up, SiLU gate
+            h = F.rms_norm(x, (self.hidden,), w.mlp_norm, self.eps)
+            gate, up = w.gate_up(h).chunk(2, dim=-1)  # (BT, I) each
+            x = w.down(F.silu(gate) * up, residual=x)  # (BT, E)
+        mark = kv.mark
+        assert mark is not None
+        mark.end = end
+        return KV(kv.layers, end, mark), x.view(B, T, self.hidden)
+
+    def _attend(self, q: torch.Tensor, keys: torch.Tensor, values: torch.Tensor,
+                start: int) -> torch.Tensor:
+        """SDPA of q (B, Hq, T, D) over the cache (B, Hkv, L, D) -> (BT, Hq D)."""
+        B, Hq, T, D = q.shape
+        if T == 1:  # decode: fold each group's query heads into rows of its kv head; no mask
+            qg = q.reshape(B, self.n_kv, Hq // self.n_kv, D)  # (B, Hkv, G, D)
+            out = F.scaled_dot_product_attention(qg, keys, values, scale=self.scale)
+            return out.reshape(B, Hq * D)  # head h = kv * G + g, as transformers' repeat_kv
+        if start == 0:
+            out = F.scaled_dot_product_attention(q, keys, values, is_causal=True,
+                                                 scale=self.scale, enable_gqa=True)
+        else:  # a block after a cache: query i sees positions up to start + i
+            L = keys.shape[2]
+            mask = torch.arange(L)[None, :] <= torch.arange(start, start + T)[:, None]  # (T, L)
+            out = F.scaled_dot_product_attention(q, keys, values, attn_mask=mask,
+                                                 scale=self.scale, enable_gqa=True)
+        return out.transpose(1, 2).reshape(B * T, Hq * D)
+
+    def _logits(self, h: torch.Tensor) -> torch.Tensor:
+        """Final norm and output projection: hidden (N, E) -> logits (N, V)."""
+        h = F.rms_norm(h, (self.hidden,), self.final_norm, self.eps)
+        return self.lm_head(h.contiguous())
+
+    def _room(self, kv: KV, rows: int, extra: int) -> KV:
+        """`kv` if it may be written in place for `extra` more positions, else a roomier copy."""
+        if kv.rows and kv.writable(extra):
+            return kv
+        length = kv.length
+        cap = -(-(length + extra) // CACHE_BUCKET) * CACHE_BUCKET
+        n = len(self.layers)
+        buf = torch.empty(2, n, rows, self.n_kv, cap, self.head_dim, dtype=self.dtype)
+        layers = tuple((buf[0, i], buf[1, i]) for i in range(n))
+        for (k, v), (k_old, v_old) in zip(layers, kv.views()):
+            k[:, :, :length] = k_old
+            v[:, :, :length] = v_old
+        return KV(layers, length, WriteMark(length))
