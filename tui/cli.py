@@ -23,6 +23,7 @@ COMMANDS: dict[str, tuple[str, str]] = {
     "models": ("models", "list the model catalogue and what loads offline"),
     "recipe": ("recipe", "check a recipe text and print its canonical form"),
     "report": ("report", "write an HTML or Markdown report of a transcript"),
+    "replay": ("replay", "open a saved transcript in the app, read-only, without the model"),
     "rerun": ("rerun", "decode a transcript's session again and compare token by token"),
     "recover": ("recover", "list crash-recovery logs, or turn one into a transcript"),
     "sweep": ("sweep", "draw many samples per recipe, measure them and find the trade-off front"),

@@ -43,7 +43,7 @@ from tui.record import StepRecord
 from tui.transcript import RECOVERY_FORMAT, PaneHeader, dumps, header_of, step_line
 
 if TYPE_CHECKING:
-    from tui.engine import PaneView, SessionView
+    from tui.views import PaneView, SessionView
     from tui.session import SessionInfo
 
 STATE_DIR_ENV = "LOGITFORK_STATE_DIR"

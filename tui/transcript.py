@@ -26,7 +26,7 @@ from typing import IO, TYPE_CHECKING, Any, Iterable, Iterator
 from tui.record import StepRecord
 
 if TYPE_CHECKING:
-    from tui.engine import PaneView, SessionView
+    from tui.views import PaneView, SessionView
     from tui.session import SessionInfo
 
 FORMAT = "logitfork-transcript"

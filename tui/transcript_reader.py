@@ -26,7 +26,7 @@ from tui.transcript_schema import (SchemaError, check_format, check_step, parse_
                                    parse_step, upgrade_header)
 
 if TYPE_CHECKING:
-    from tui.engine import SessionView
+    from tui.views import SessionView
 
 MAX_LINE_BYTES = 16 * 1024 * 1024  # a step line is a few KB; a header holds the prompt
 Warn = Callable[[str], None]
@@ -292,17 +292,17 @@ class StoredSession:
     def to_view(self) -> "SessionView":
         """The whole session as an engine `SessionView` (reads every record into memory).
 
-        For showing a stored session with code written for live ones; imports the engine
-        module (and so torch) on first use.
+        For showing a stored session with code written for live ones; no torch involved.
         """
-        from tui.engine import PaneView, SessionView
+        from tui.views import PaneView, SessionView
 
         records: dict[int, list[StepRecord]] = {p.id: [] for p in self.header.panes}
         for rec in self.iter_records():
             records[rec.pane].append(rec)
         panes = tuple(PaneView(p.id, p.name, p.recipe, p.seed, tuple(records[p.id]), p.stop,
                                p.recipe_log, p.origin) for p in self.header.panes)
-        return SessionView(self.steps, self.header.seed, self.header.shared_draws, panes)
+        return SessionView(self.steps, self.header.seed, self.header.shared_draws, panes,
+                           self.header.draw_log)
 
     def _check_unchanged(self) -> None:
         if _stamp(self.path) != self._stamp:

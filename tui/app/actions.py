@@ -21,10 +21,10 @@ from tui.app.recipe_dialog import RecipeChoice, RecipeDialog
 from tui.app.safe_text import shown_line
 from tui.app.save_dialog import SaveDialog, default_path
 from tui.app.token_pane import TokenPane
-from tui.engine import Engine
 
 if TYPE_CHECKING:
     from tui.app.app import LogitforkApp
+    from tui.engine import Engine
 
 CHANGES = frozenset({"run_pause", "one_step", "fork", "edit", "add_pane", "remove_pane",
                      "rewind", "toggle_draws", "reseed", "save"})

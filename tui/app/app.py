@@ -2,41 +2,48 @@
 
 `LogitforkApp` is built on a session source (see `source.py`): a `SessionLoader`
 (the model loads in a worker while a progress panel shows), a `LiveSource` on a ready
-engine, or a read-only `StaticSource`. All engine work runs on one worker thread
-through a `Stepper`; this module only shows snapshots and turns keys into requests.
-The key actions live in `actions.py`; `make_app` is the one factory used by the
-`watch` command and by the tests.
+engine, or a read-only `StaticSource` (a replay, see `replay_source.py`). All engine
+work runs on one worker thread through a `Stepper`; this module only shows snapshots
+and turns keys into requests. The key actions live in `actions.py`, the crash-recovery
+log and the reopen offer in `recovery_offer.py`; `make_app` is the one factory used by
+the `watch` and `replay` commands and by the tests. Importing it loads no torch.
 """
 
 from __future__ import annotations
 
 from pathlib import Path
+from typing import TYPE_CHECKING
 
-from textual import on, work
+from textual import events, on, work
 from textual.app import App, ComposeResult
 from textual.binding import Binding
 from textual.filter import Monochrome
 from textual.message import Message
 from textual.worker import get_current_worker
 
-from tui.app.actions import SessionActions
+from tui.app.actions import CHANGES, SessionActions
 from tui.app.colouring import Scheme
 from tui.app.key_bar import KeyBar
 from tui.app.legend import Legend
 from tui.app.loading_panel import LoadingPanel
 from tui.app.pane_grid import PaneGrid
+from tui.app.recovery_offer import RecoveryActions
 from tui.app.source import SessionLoader, SessionSource
 from tui.app.stepper import (STOPPED_ALL, Failed, OperationDone, RunChanged, Stepped, Stepper,
                              StepperEvent)
 from tui.app.token_pane import TokenPane
 from tui.app.top_bar import BarState, TopBar
-from tui.engine import SessionView
+from tui.views import SessionView
+
+if TYPE_CHECKING:
+    from tui.recovery import RecoveryLog
+    from tui.recovery_reader import RecoverySummary
 
 REDRAW_SECONDS = 1 / 30  # the panes redraw at most this often, however fast steps come
 RATE_SMOOTHING = 0.3  # weight of the newest step in the steps-per-second average
 
 
-class LogitforkApp(SessionActions, App[int]):
+class LogitforkApp(SessionActions, RecoveryActions, App[int]):
     """The live side-by-side view of a decoding session."""
 
     CSS_PATH = ["app.tcss", "dialogs.tcss", "inspect.tcss"]
@@ -94,8 +101,12 @@ class LogitforkApp(SessionActions, App[int]):
             self.error = error
 
     def __init__(self, source: SessionSource | SessionLoader, *, mono: bool = False,
-                 save_folder: Path | None = None) -> None:
+                 save_folder: Path | None = None, recovery: bool = False) -> None:
         super().__init__()
+        self.keep_recovery = recovery  # keep a crash-recovery log, offer leftover ones
+        self.recovery: RecoveryLog | None = None
+        self.recovery_told = False  # the log's failure was told
+        self.recovery_offered: RecoverySummary | None = None
         self.scheme = Scheme(mono)
         if mono and not self.no_color:
             self._filters.append(Monochrome())  # --mono: no colour anywhere, as NO_COLOR
@@ -128,6 +139,7 @@ class LogitforkApp(SessionActions, App[int]):
 
     def on_mount(self) -> None:
         self.theme = "textual-dark"
+        self._plan_recovery()
         if self._loader is not None:
             self.redraw()
             self._load_model(self._loader)
@@ -140,11 +152,14 @@ class LogitforkApp(SessionActions, App[int]):
         self.view = source.first_view()
         self.cursor = self.view.step
         if source.engine is not None:
-            self.stepper = Stepper(source.engine, self._emit)
-            self._serve(self.stepper)
+            on_view = self.recovery.sync if self.recovery is not None else None
+            self.stepper = Stepper(source.engine, self._emit, on_view)
+            self._serve(self.stepper, source)
         for panel in self.grid.screen.query(LoadingPanel):
             panel.remove()
         self.redraw()
+        for note in getattr(source, "notes", ()):
+            self.notify(note, timeout=8, markup=False)
         self.call_after_refresh(self._focus_first_pane)
 
     def _focus_first_pane(self) -> None:
@@ -169,8 +184,9 @@ class LogitforkApp(SessionActions, App[int]):
         self.post_message(self.LoadDone(source))
 
     @work(thread=True, exclusive=True, exit_on_error=False, group="stepper")
-    def _serve(self, stepper: Stepper) -> None:
+    def _serve(self, stepper: Stepper, source: SessionSource) -> None:
         worker = get_current_worker()
+        self._begin_recovery(source)  # here: creating the file fsyncs
         stepper.serve(lambda: worker.is_cancelled)
 
     def _emit(self, event: StepperEvent) -> None:
@@ -184,6 +200,8 @@ class LogitforkApp(SessionActions, App[int]):
 
     @on(LoadDone)
     def _load_done(self, message: LoadDone) -> None:
+        if self.source is not None:
+            return  # replaced meanwhile by a reopened recovery log: the model is not needed
         if message.source is None:
             self.error_message = message.error
             self.exit(return_code=2)
@@ -192,6 +210,8 @@ class LogitforkApp(SessionActions, App[int]):
 
     @on(EngineEvent)
     def _engine_event(self, message: EngineEvent) -> None:
+        if self.stepper is None:
+            return  # from a session that was replaced
         event = message.event
         if isinstance(event, Stepped):
             self._take_view(event.view)
@@ -215,6 +235,8 @@ class LogitforkApp(SessionActions, App[int]):
         elif isinstance(event, RunChanged):
             if not event.running and event.reason == STOPPED_ALL:
                 self.notify(event.reason, timeout=4, markup=False)
+        if self.recovery is not None and self.recovery.error:
+            self._recovery_failed()
         self.schedule_redraw()
 
     def _finish_operation(self, label: str) -> None:
@@ -251,7 +273,7 @@ class LogitforkApp(SessionActions, App[int]):
             steps_per_second=rate, running=running, busy=", ".join(self.busy),
             step=view.step if view else 0, cursor=self.cursor,
             read_only=self.source is not None and self.source.engine is None,
-            loading=self.source is None)
+            loading=self.source is None, mode=getattr(self.source, "label", "read-only"))
         self.grid.screen.query_one(TopBar).set_state(state)
         if view is not None:
             self.grid.sync(view, self.cursor)
@@ -277,23 +299,43 @@ class LogitforkApp(SessionActions, App[int]):
         panes = self.grid.panes()
         return panes[0] if panes else None
 
+    def on_key(self, event: events.Key) -> None:
+        """A key of a control that is off (read-only session): say why, once per press."""
+        source = self.source
+        if source is None or source.engine is not None or self.screen is not self.grid.screen:
+            return
+        action = next((MODEL_KEYS[k] for k in (event.key, *event.aliases) if k in MODEL_KEYS),
+                      None)
+        if action is not None:
+            event.stop()
+            self.notify(source.unavailable(action), severity="warning", timeout=6,
+                        markup=False)
+
     def on_unmount(self) -> None:
         if self.stepper is not None:
             self.stepper.close()
+        self._close_recovery()
+
+
+MODEL_KEYS: dict[str, str] = {  # key -> action, for the controls a read-only session turns off
+    key.strip(): b.action.split("(")[0] for b in LogitforkApp.BINDINGS
+    if isinstance(b, Binding) and b.action.split("(")[0] in CHANGES for key in b.key.split(",")}
 
 
 def make_app(scenario: str | None = None, *, model: str | None = None, seed: int | None = None,
              mono: bool = False, dtype: str = "float32", allow_pickle: bool = False,
              max_new_tokens: int | None = None, source: SessionSource | None = None,
-             save_folder: Path | None = None) -> LogitforkApp:
+             save_folder: Path | None = None, recovery: bool = False) -> LogitforkApp:
     """The app on a scenario (by name or path; the default one when None), or on `source`.
 
+    With `recovery`, a live session keeps a crash-recovery log and the app offers to
+    reopen one left by an earlier session (see `recovery_offer.py`).
     Scenario errors raise `UserError` here, before any screen is drawn.
     """
     if source is not None:
-        return LogitforkApp(source, mono=mono, save_folder=save_folder)
+        return LogitforkApp(source, mono=mono, save_folder=save_folder, recovery=recovery)
     from tui.scenario import find_scenario, load_scenario
 
     loader = SessionLoader(load_scenario(find_scenario(scenario)), model=model, seed=seed,
                            dtype=dtype, allow_pickle=allow_pickle, max_new_tokens=max_new_tokens)
-    return LogitforkApp(loader, mono=mono, save_folder=save_folder)
+    return LogitforkApp(loader, mono=mono, save_folder=save_folder, recovery=recovery)

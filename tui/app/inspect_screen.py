@@ -6,6 +6,11 @@ kept or cut and which stage cut it); sparklines of entropy and kept-set size ove
 pane's steps; and the step under every pane's recipe. What needs the logits (the
 stage trace, the other recipes) is computed on a worker and filled in when ready.
 Choosing a row (Enter) asks, then closes the view with (pane, step, token) to force.
+
+On a read-only session (a replay) there are no logits: the table comes from the stored
+top-20 alone (kept or cut from the stored final probabilities), a note says that the
+stage cuts need the model, and the other recipes are approximated from the stored
+list (`approx_recipes.py`) and labelled so; forcing is off, with the reason.
 """
 
 from __future__ import annotations
@@ -31,9 +36,12 @@ from tui.app.step_analysis import (RecipeRow, TopRow, format_prob, recipe_at, re
                                    top_rows)
 from tui.app.stepper import describe
 from tui.app.token_pane import pane_text, prompt_tail
-from tui.engine import SessionView
+from tui.views import SessionView
 
 WIDE_COLUMNS = 110  # from this width on, the side panel sits beside the table
+RECIPES_LABEL = "this step under every recipe"
+READ_ONLY_NOTE = ("no model: kept/cut from the stored final probabilities; the stage that cut "
+                  "a token (-) needs the model")
 
 
 class InspectScreen(Screen[tuple[int, int, int] | None]):
@@ -50,11 +58,12 @@ class InspectScreen(Screen[tuple[int, int, int] | None]):
         """The worker's results: the table with stage cuts, and the recipe rows."""
 
         def __init__(self, rows: tuple[TopRow, ...], recipes: tuple[RecipeRow, ...] | None,
-                     note: str = "") -> None:
+                     note: str = "", label: str = "") -> None:
             super().__init__()
             self.rows = rows
             self.recipes = recipes
             self.note = note
+            self.label = label  # replaces the recipe panel's heading when set
 
     def __init__(self, source: SessionSource, view: SessionView, pane_id: int, step: int,
                  scheme: Scheme) -> None:
@@ -68,6 +77,7 @@ class InspectScreen(Screen[tuple[int, int, int] | None]):
         self.rows: tuple[TopRow, ...] = top_rows(self.record)
         self.recipes: tuple[RecipeRow, ...] | None = None
         self.analysed = False
+        self.read_only = source.engine is None
 
     # ----- layout -------------------------------------------------------------------
 
@@ -76,6 +86,8 @@ class InspectScreen(Screen[tuple[int, int, int] | None]):
         yield VerticalScroll(Static(self._context_text(), id="inspect-context-text"),
                              id="inspect-context")
         yield Static(self._chosen_line(), id="inspect-chosen")
+        if self.read_only:
+            yield Static(Text(READ_ONLY_NOTE, style="italic"), id="inspect-note")
         with Container(id="inspect-body"):
             yield DataTable(id="top-table", cursor_type="row", zebra_stripes=True)
             with Container(id="inspect-side"):
@@ -86,7 +98,7 @@ class InspectScreen(Screen[tuple[int, int, int] | None]):
                     yield Sparkline([math.log10(max(r.kept, 1)) for r in self.pane.records],
                                     id="kept-spark")
                 with Vertical(id="inspect-recipes"):
-                    yield Static(Text("this step under every recipe", style="bold"))
+                    yield Static(Text(RECIPES_LABEL, style="bold"), id="recipes-label")
                     yield DataTable(id="recipe-table", cursor_type="none", show_cursor=False)
         yield KeyBar(id="inspect-keys")
 
@@ -151,7 +163,9 @@ class InspectScreen(Screen[tuple[int, int, int] | None]):
             rank = Text(("\u25b6" if row.chosen else "") + str(row.rank),
                         style="bold" if row.chosen else "")
             kept = Text("kept" if row.kept else "cut", style="" if row.kept else "dim")
-            cut = row.cut_by if row.cut_by else ("" if row.kept or self.analysed else "\u2026")
+            cut = row.cut_by if row.cut_by else ("" if row.kept else
+                                                 "-" if self.read_only else
+                                                 "" if self.analysed else "\u2026")
             table.add_row(rank, Text(shown_token(row.text), token_style),
                           Text(format_prob(row.raw_prob), justify="right"),
                           Text(format_prob(row.final_prob), justify="right"),
@@ -172,9 +186,11 @@ class InspectScreen(Screen[tuple[int, int, int] | None]):
             if row.error:
                 table.add_row(name, "", Text("error", style="bold"), Text(shown_line(row.error)))
                 continue
-            p = Text(format_prob(row.chosen_prob), justify="right",
+            approx = "\u2248" if row.approx else ""
+            p = Text(approx + format_prob(row.chosen_prob), justify="right",
                      style="" if row.chosen_prob > 0 else "bold")
-            table.add_row(name, Text(str(row.kept), justify="right"), p,
+            kept = f"{row.kept}+" if row.kept_beyond else str(row.kept)
+            table.add_row(name, Text(approx + kept, justify="right"), p,
                           Text(shown_line(row.recipe), style="dim"))
 
     def _fill_spark_labels(self) -> None:
@@ -197,8 +213,7 @@ class InspectScreen(Screen[tuple[int, int, int] | None]):
             logits = source.logits_at(pane.id, step)
             history = source.history(pane.id, step)
             if logits is None or history is None:
-                self.post_message(self.Analysed(top_rows(self.record), None,
-                                                "needs the model (read-only session)"))
+                self.post_message(self._without_logits(history))
                 return
             trace = source.trace_at(pane.id, step)
             rows = top_rows(self.record, trace)
@@ -208,11 +223,26 @@ class InspectScreen(Screen[tuple[int, int, int] | None]):
             return
         self.post_message(self.Analysed(rows, recipes))
 
+    def _without_logits(self, history: tuple[int, ...] | None) -> Analysed:
+        """A read-only session: approximate the recipes from the stored top-20 if it can."""
+        rows = top_rows(self.record)
+        if history is None:
+            return self.Analysed(rows, None, "needs the model (read-only session)")
+        from tui.app.approx_recipes import approx_recipe_rows, partial_logits
+
+        recipes = approx_recipe_rows(self.record, history, self.pane, self.view.panes)
+        mass = partial_logits(self.record).stored_mass
+        label = (f"this step under every recipe, \u2248 approximate: from the stored top-20 "
+                 f"({format_prob(mass)} of the raw mass)")
+        return self.Analysed(rows, recipes, label=label)
+
     @on(Analysed)
     def _analysed(self, message: Analysed) -> None:
         self.rows, self.recipes, self.analysed = message.rows, message.recipes, True
         self._fill_table()
         self._fill_recipes(message.note)
+        if message.label:
+            self.query_one("#recipes-label", Static).update(Text(message.label, style="bold"))
 
     # ----- actions ------------------------------------------------------------------------
 
@@ -228,9 +258,15 @@ class InspectScreen(Screen[tuple[int, int, int] | None]):
         event.stop()
         self.action_force_row()
 
+    def check_action(self, action: str, parameters: tuple[object, ...]) -> bool | None:
+        if action == "force_row" and self.read_only:
+            return None  # shown dimmed; Enter says why
+        return True
+
     def action_force_row(self) -> None:
-        if self.source.engine is None:
-            self.notify("a read-only session cannot be changed", markup=False)
+        if self.read_only:
+            self.notify(self.source.unavailable("force"), severity="warning", timeout=6,
+                        markup=False)
             return
         table = self.query_one("#top-table", DataTable)
         if not 0 <= table.cursor_row < len(self.rows):

@@ -3,9 +3,10 @@
 The app is built on a `SessionSource`. `LiveSource` wraps a running `Engine`; the app
 then offers every control. `StaticSource` holds fixed `SessionView` snapshots (a stored
 transcript, or a test's hand-made records): the app shows and inspects it, and turns
-off every control that would change it. A `SessionLoader` makes a `LiveSource` on the
-app's loading worker, so that the screen appears before the model has loaded.
-No Textual here.
+off every control that would change it, telling why (`unavailable`). A `SessionLoader`
+makes a `LiveSource` on the app's loading worker, so that the screen appears before the
+model has loaded. Replays of transcripts and recovery logs are built in `replay_source`.
+No Textual, and no torch until a model is loaded.
 """
 
 from __future__ import annotations
@@ -13,12 +14,14 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import TYPE_CHECKING, Callable, Iterator, Protocol
 
-import numpy as np
-
-from tui.engine import Engine, SessionView
+from tui.views import SessionView
 
 if TYPE_CHECKING:
+    import numpy as np
+
     from tui.decoding import StageResult
+    from tui.engine import Engine
+    from tui.recovery import RecoveryLog
     from tui.scenario import Scenario
     from tui.session import SessionInfo
 
@@ -45,6 +48,10 @@ class SessionSource(Protocol):
     def trace_at(self, pane_id: int, step: int) -> list[StageResult] | None: ...
 
     def transcript_lines(self, view: SessionView) -> Iterator[str] | None: ...
+
+    def unavailable(self, action: str) -> str:
+        """Why `action` cannot be done on this session ("" when it can)."""
+        ...
 
 
 @dataclass
@@ -91,16 +98,35 @@ class LiveSource:
 
         return lines(view, self.info, self.live_engine.prompt_ids)
 
+    def unavailable(self, action: str) -> str:
+        return ""
+
+    def begin_log(self, log: "RecoveryLog") -> None:
+        """Start the crash-recovery log on this session (call on the engine's worker)."""
+        log.begin(self.live_engine.view(), self.info, self.live_engine.prompt_ids)
+
+
+READ_ONLY = "this session is read-only"
+
 
 @dataclass
 class StaticSource:
-    """A session that can be shown and inspected but not changed (no logits, no model)."""
+    """A session that can be shown and inspected but not changed (no logits, no model).
+
+    With `prompt_ids`, `history` answers (prompt and the pane's tokens), which lets the
+    inspect view approximate other recipes from the stored top-20 lists.
+    """
 
     view: SessionView
     title: str
     model_name: str
     prompt_text: str
     scenario_name: str = "transcript"
+    prompt_ids: tuple[int, ...] | None = None
+    reason: str = READ_ONLY  # why the controls that change the session are off
+    save_reason: str = ""  # why saving is off, when that differs from `reason`
+    notes: tuple[str, ...] = ()  # told once when the app opens (reader warnings, the reason)
+    label: str = "read-only"  # the top bar's mode word
 
     @property
     def engine(self) -> None:
@@ -113,13 +139,21 @@ class StaticSource:
         return None
 
     def history(self, pane_id: int, step: int) -> tuple[int, ...] | None:
-        return None
+        if self.prompt_ids is None:
+            return None
+        pane = next((p for p in self.view.panes if p.id == pane_id), None)
+        if pane is None or not 0 <= step <= len(pane.records):
+            return None
+        return self.prompt_ids + tuple(r.token_id for r in pane.records[:step])
 
     def trace_at(self, pane_id: int, step: int) -> list[StageResult] | None:
         return None
 
     def transcript_lines(self, view: SessionView) -> Iterator[str] | None:
         return None
+
+    def unavailable(self, action: str) -> str:
+        return (self.save_reason or self.reason) if action == "save" else self.reason
 
 
 @dataclass(frozen=True)

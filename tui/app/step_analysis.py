@@ -15,7 +15,7 @@ from typing import Sequence
 import numpy as np
 
 from tui.decoding import INPUT, Recipe, RecipeError, StageResult, cut_by
-from tui.engine import PaneView
+from tui.views import PaneView
 from tui.record import StepRecord
 
 MASKED = "masked"  # a token cut before the recipe ran (-inf logit)
@@ -47,6 +47,8 @@ class RecipeRow:
     chosen_prob: float
     own: bool  # the inspected pane itself (exact values from its record)
     error: str = ""
+    approx: bool = False  # from a stored top-20 list, not the logits (see approx_recipes)
+    kept_beyond: bool = False  # (approx) tokens past the stored list were kept as well
 
 
 def recipe_at(pane: PaneView, step: int) -> str:

@@ -7,6 +7,10 @@ order, any queued operation (fork, edit, force, ...) and then, while running, on
 Pausing takes effect after the step under way. After each unit of work it hands a
 `SessionView` snapshot to `emit` (thread-safe in the app: `post_message`).
 
+If given, `on_view` is called on the worker with each new snapshot, after it was handed
+to `emit`: the app's crash-recovery log writes what changed there (a flush fsyncs, so
+it must not run on the UI thread). If it raises, it is dropped and the error reported.
+
 A failing step (out of memory, a bad recipe reaching the engine) pauses the session,
 rewinds the engine to the step before the failure so that no pane is left half-stepped,
 and reports the error. No Textual here: the loop is tested on its own.
@@ -18,10 +22,13 @@ import threading
 import time
 from collections import deque
 from dataclasses import dataclass
-from typing import Any, Callable
+from typing import TYPE_CHECKING, Any, Callable
 
-from tui.engine import Engine, EngineError, SessionView
 from tui.errors import UserError
+from tui.views import EngineError, SessionView
+
+if TYPE_CHECKING:
+    from tui.engine import Engine
 
 
 @dataclass(frozen=True)
@@ -60,7 +67,7 @@ class RunChanged:
 
 StepperEvent = Stepped | OperationDone | Failed | RunChanged
 STOPPED_ALL = "every pane has stopped"  # the RunChanged reason when the session is done
-Operation = Callable[[Engine], Any]
+Operation = Callable[["Engine"], Any]
 
 
 def describe(exc: BaseException) -> str:
@@ -77,9 +84,11 @@ def describe(exc: BaseException) -> str:
 class Stepper:
     """Serialises all engine work on one thread. See the module docstring."""
 
-    def __init__(self, engine: Engine, emit: Callable[[StepperEvent], None]) -> None:
+    def __init__(self, engine: "Engine", emit: Callable[[StepperEvent], None],
+                 on_view: Callable[[SessionView], None] | None = None) -> None:
         self.engine = engine
         self._emit = emit
+        self._on_view = on_view
         self._wake = threading.Condition()
         self._ops: deque[tuple[str, Operation]] = deque()
         self._running = False
@@ -166,9 +175,13 @@ class Stepper:
         try:
             result = operation(self.engine)
         except Exception as exc:  # noqa: BLE001 - shown to the user, session kept
-            self._emit(Failed(label, describe(exc), self._safe_view()))
+            view = self._safe_view()
+            self._emit(Failed(label, describe(exc), view))
+            self._follow(view)
             return
-        self._emit(OperationDone(label, self.engine.view(), result))
+        view = self.engine.view()
+        self._emit(OperationDone(label, view, result))
+        self._follow(view)
 
     def _do_step(self, single: bool) -> None:
         engine = self.engine
@@ -182,15 +195,28 @@ class Stepper:
         except Exception as exc:  # noqa: BLE001 - shown to the user, session kept
             self.pause("a step failed")
             self._recover(before)
-            self._emit(Failed("step", describe(exc), self._safe_view()))
+            view = self._safe_view()
+            self._emit(Failed("step", describe(exc), view))
+            self._follow(view)
             return
         view = engine.view()
         self._emit(Stepped(view, time.perf_counter() - started))
+        self._follow(view)
         if not single and self._running:
             if view.finished:
                 self.pause(STOPPED_ALL)
             elif self._until is not None and view.step >= self._until:
                 self.pause(f"reached step {self._until}")
+
+    def _follow(self, view: SessionView | None) -> None:
+        """Hand a new snapshot to `on_view` (the recovery log); drop it if it fails."""
+        if self._on_view is None or view is None:
+            return
+        try:
+            self._on_view(view)
+        except Exception as exc:  # noqa: BLE001 - the session goes on without it
+            self._on_view = None
+            self._emit(Failed("recovery log", describe(exc)))
 
     def _recover(self, step: int) -> None:
         """Bring every pane back to `step` after a failed step (best effort)."""

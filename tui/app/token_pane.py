@@ -19,7 +19,7 @@ from textual.widgets import Static
 
 from tui.app.colouring import FORCED_MARK, PROMPT_STYLE, Scheme
 from tui.app.safe_text import shown, shown_line
-from tui.engine import PaneView, mean_logprob
+from tui.views import PaneView, mean_logprob
 from tui.record import StepRecord
 
 PROMPT_TAIL_LINES = 2  # about this many lines of the prompt's end show above the text

@@ -24,6 +24,7 @@ class BarState:
     cursor: int = 0
     read_only: bool = False
     loading: bool = False
+    mode: str = "read-only"  # the word shown for a read-only session (replay, recovered)
 
 
 def bar_text(state: BarState) -> Text:
@@ -32,7 +33,7 @@ def bar_text(state: BarState) -> Text:
     if state.loading:
         text.append(" \u25cc loading ", style="bold reverse")
     elif state.read_only:
-        text.append(" \u25a0 read-only ", style="bold reverse")
+        text.append(f" \u25a0 {state.mode} ", style="bold reverse")
     elif state.running:
         text.append(" \u25b6 running ", style="bold #0b0c0e on #009E73")
     else:
@@ -49,7 +50,8 @@ def bar_text(state: BarState) -> Text:
     if state.loading:
         return text
     rate = state.steps_per_second
-    text.append(f"  {rate:.1f} steps/s" if rate else "  - steps/s")
+    if not state.read_only:  # a stored session is not stepped
+        text.append(f"  {rate:.1f} steps/s" if rate else "  - steps/s")
     where = f"step {state.step}"
     if state.cursor != state.step:
         where = f"cursor {state.cursor}/{state.step}"

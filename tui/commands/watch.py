@@ -61,7 +61,7 @@ def main(args: argparse.Namespace) -> int:
 
     app = make_app(args.scenario, model=args.model, seed=args.seed,
                    mono=wants_mono(args.mono), dtype=args.dtype,
-                   allow_pickle=args.allow_pickle)
+                   allow_pickle=args.allow_pickle, recovery=True)
     app.run()
     if app.error_message:
         raise UserError(app.error_message)
