@@ -24,29 +24,26 @@ from __future__ import annotations
 from dataclasses import dataclass
 from functools import lru_cache
 
-from rich.color import Color
 from rich.style import Style
 from rich.text import Text
 
-# Okabe & Ito 2008, "Color Universal Design", the eight-colour palette. The sRGB values
-# are recalled from memory (they are the ones Wong 2011, Nature Methods 8:441, reprints).
-OKABE_ITO = {
-    "black": "#000000",
-    "orange": "#E69F00",
-    "sky_blue": "#56B4E9",
-    "bluish_green": "#009E73",
-    "yellow": "#F0E442",
-    "blue": "#0072B2",
-    "vermillion": "#D55E00",
-    "reddish_purple": "#CC79A7",
-}
+from tui import token_style as ts
 
-PANE_BACKGROUND = "#16181c"  # the pane body's background (app.tcss uses the same value)
-ALTERNATE_BACKGROUND = "#22252b"  # every other token, to show token boundaries
-NEUTRAL = "#dcdfe4"  # rank 1: the model's own first choice, plain text
-DARK_TEXT = "#0b0c0e"  # text on a highlighter background
-PROMPT_STYLE = Style(color="#7c828c", bgcolor=PANE_BACKGROUND, italic=True)
-FORCED_MARK = "\u25b8"  # BLACK RIGHT-POINTING SMALL TRIANGLE, before a forced token
+# The scheme itself is plain data in `tui.token_style` (the reports read it too); this
+# module only turns it into Rich styles.
+OKABE_ITO = ts.OKABE_ITO
+PANE_BACKGROUND = ts.PANE_BACKGROUND  # app.tcss uses the same value
+ALTERNATE_BACKGROUND = ts.ALTERNATE_BACKGROUND
+NEUTRAL = ts.NEUTRAL
+DARK_TEXT = ts.DARK_TEXT
+PROMPT_STYLE = Style(color=ts.PROMPT_COLOUR, bgcolor=PANE_BACKGROUND, italic=True)
+FORCED_MARK = ts.FORCED_MARK
+MONO_WASH = ts.MONO_WASH
+FinalBand = ts.FinalBand
+FINAL_BANDS = ts.FINAL_BANDS
+rank_band = ts.rank_band
+final_band = ts.final_band
+blend = ts.blend
 
 
 @dataclass(frozen=True)
@@ -60,58 +57,10 @@ class RankBand:
     mono: Style
 
 
-RANK_BANDS: tuple[RankBand, ...] = (
-    RankBand("1", 1, 1, NEUTRAL, Style()),
-    RankBand("2-3", 2, 3, OKABE_ITO["sky_blue"], Style(italic=True)),
-    RankBand("4-10", 4, 10, OKABE_ITO["yellow"], Style(underline=True)),
-    RankBand("11-50", 11, 50, OKABE_ITO["orange"], Style(bold=True)),
-    RankBand(">50", 51, None, OKABE_ITO["reddish_purple"], Style(bold=True, underline=True)),
+RANK_BANDS: tuple[RankBand, ...] = tuple(
+    RankBand(b.label, b.low, b.high, b.colour, Style(**{a: True for a in b.mono}))
+    for b in ts.RANK_BANDS
 )
-
-
-@dataclass(frozen=True)
-class FinalBand:
-    """Final probabilities in [low, next band's low) and the wash drawn behind them."""
-
-    label: str
-    low: float
-    wash: float  # 0 = no wash, 1 = the band colour itself (a highlighter)
-
-
-FINAL_BANDS: tuple[FinalBand, ...] = (
-    FinalBand(">=50%", 0.5, 0.0),
-    FinalBand("5-50%", 0.05, 0.16),
-    FinalBand("<5%", 0.0, 1.0),
-)
-MONO_WASH = "#b9bdc4"  # the grey that mono mode washes with
-
-
-def rank_band(rank: int) -> int:
-    """Index into RANK_BANDS for a rank (1 = most likely)."""
-    if rank < 1:
-        raise ValueError(f"rank must be >= 1, got {rank}")
-    for i, band in enumerate(RANK_BANDS):
-        if band.high is None or rank <= band.high:
-            return i
-    return len(RANK_BANDS) - 1
-
-
-def final_band(prob: float) -> int:
-    """Index into FINAL_BANDS for a final probability in [0, 1]."""
-    if not 0.0 <= prob <= 1.0 + 1e-9:
-        raise ValueError(f"final probability must be in [0, 1], got {prob}")
-    for i, band in enumerate(FINAL_BANDS):
-        if prob >= band.low:
-            return i
-    return len(FINAL_BANDS) - 1
-
-
-def blend(colour: str, base: str, amount: float) -> str:
-    """`amount` of `colour` over `base` (0 = base, 1 = colour), as #rrggbb."""
-    a = Color.parse(colour).get_truecolor()
-    b = Color.parse(base).get_truecolor()
-    mix = [round(y + (x - y) * amount) for x, y in zip(a, b)]
-    return "#{:02x}{:02x}{:02x}".format(*mix)
 
 
 @dataclass(frozen=True)
