@@ -84,9 +84,12 @@ def model(request: pytest.FixtureRequest) -> torch.nn.Module:
 
 
 @pytest.fixture(autouse=True)
-def small_buckets(monkeypatch: pytest.MonkeyPatch) -> None:
-    # Capacity grows every 8 positions, so decode runs cross several cache re-allocations.
+def small_sizes(monkeypatch: pytest.MonkeyPatch) -> None:
+    # Capacity grows every 8 positions, so decode runs cross several cache re-allocations;
+    # oneDNN sums run in chunks of 24 (16 in the output projection) of the tiny widths.
     monkeypatch.setattr(lean_llama, "CACHE_BUCKET", 8)
+    monkeypatch.setattr(lean_llama, "K_CHUNK", 24)
+    monkeypatch.setattr(lean_llama, "HEAD_K_CHUNK", 16)
 
 
 def test_the_tiny_models_logits_are_far_from_flat(model):
@@ -96,13 +99,16 @@ def test_the_tiny_models_logits_are_far_from_flat(model):
 
 
 @pytest.mark.parametrize("rows", [1, 3])
-@pytest.mark.parametrize("packed", [True, False], ids=["onednn", "plain"])
-def test_prefill_and_20_cached_steps_match_transformers(model, rows, packed):
-    if packed and not lean_llama.onednn_works(torch.float32):
-        pytest.skip("oneDNN packed linear unavailable on this build")
+@pytest.mark.parametrize("packed, chunked", [(True, True), (True, False), (False, True)],
+                         ids=["onednn-chunked", "onednn-whole", "plain"])
+def test_prefill_and_20_cached_steps_match_transformers(model, rows, packed, chunked):
+    if packed and not torch.backends.mkldnn.is_available():
+        pytest.skip("this torch build has no oneDNN")
     ids = random_ids(rows, 28, seed=rows)
     ref = reference(model, ids)  # (B, 28, V)
-    runner = LeanRunner(model, packed=packed)
+    runner = LeanRunner(model, packed=packed, chunked=chunked)
+    if packed:
+        assert len(runner.layers[0].down.chunks) == (4 if chunked else 1)  # 96 wide: 4 x 24
     kv, logits = runner.prefill(ids[:, :8].tolist())
     assert max_err(logits, ref[:, 7]) < TOL
     for t in range(8, 28):  # 20 decode steps, each on the in-place cache

@@ -8,7 +8,8 @@ numbers measured in the same run with the variants interleaved (timings on this 
 MISS beside it. Sections: parity of the lean path on the real model, decode step time
 (1/2/4/8 panes, context ~50 and ~400), prefill, matmul layouts tried, threads, the
 4-recipe run against transformers' generate(), the recipe math's share of a step,
-bfloat16's deviation and speed, and start-up time (cold only with --cold: ~40 s).
+bfloat16's deviation and speed, the sweep's batching gain, and start-up time (cold
+only with --cold: ~40 s).
 """
 
 from __future__ import annotations
@@ -21,6 +22,7 @@ from typing import Sequence
 from tui.bench_step import Row
 
 PANES = (1, 2, 4, 8)
+CONTEXTS = (50, 400)  # context lengths for the step times
 
 
 def parse_args(argv: Sequence[str] | None) -> argparse.Namespace:
@@ -48,28 +50,22 @@ def render(rows: Sequence[Row]) -> str:
     return "\n".join(line.rstrip() for line in lines)
 
 
-def parity_rows(lm: object, runners: dict, prompt: list[int]) -> list[Row]:
-    """The lean path's logits against transformers' forward on the real model (float32)."""
-    import torch
+def sweep_rows(lm: object, quick: bool) -> list[Row]:
+    """The sweep's batching gain (`tui.bench_sweep`): 32 rows per forward against 1."""
+    from tui.bench_sweep import bench_sweep
 
-    ids = prompt[:40]
-    with torch.inference_mode():
-        ref = lm.model(input_ids=torch.tensor([ids])).logits[0].float()  # (T, V)
-    lean = runners["lean"]
-    kv, logits = lean.prefill([ids[:20]])
-    worst = float((logits[0] - ref[19]).abs().max())
-    for t in range(20, len(ids)):
-        kv, logits = lean.step(kv, [ids[t]])
-        worst = max(worst, float((logits[0] - ref[t]).abs().max()))
-    return [Row("parity", f"lean vs transformers forward, prefill + {len(ids) - 20} steps",
-                f"{worst:.1e}", "max |delta logit|", "<= 1e-4", "PASS" if worst <= 1e-4 else "MISS")]
+    out = bench_sweep(lm, new_tokens=8 if quick else 16)  # type: ignore[arg-type]
+    return [Row("sweep", f"sweep tokens/s, {out['rows_per_forward']} rows per forward vs 1 row",
+                f"{out['speedup']:.1f}x", f"{out['tokens_per_s_batched']:.0f} vs "
+                f"{out['tokens_per_s_single']:.1f} tokens/s, {out['forward']}",
+                f">= {out['target_speedup']:g}", "PASS" if out["meets_target"] else "MISS")]
 
 
 def main(argv: Sequence[str] | None = None) -> int:
     args = parse_args(argv)
     import torch
 
-    from tui import bench_runs, bench_step
+    from tui import bench_precision, bench_runs, bench_step
     from tui.forward import Runner
     from tui.lean_llama import LeanRunner, lean_refusal
     from tui.models import DEFAULT_MODEL, load_model
@@ -84,38 +80,47 @@ def main(argv: Sequence[str] | None = None) -> int:
         print(f"error: the lean path cannot run {lm.name}: {reason}", file=sys.stderr)
         return 2
     runners = {"generic": Runner(lm.model), "lean": LeanRunner(lm.model)}
+    whole = LeanRunner(lm.model, chunked=False)  # oneDNN sums in one chain: faster, less exact
     scenario = load_scenario(find_scenario("harbour-town"))
     prompt = lm.encode_prompt(scenario.prompt, scenario.message_dicts)
     quick = args.quick
-    lengths = (50, 400)
-    contexts = {n: bench_step.context_ids(prompt, n) for n in lengths}
-    steps, rounds = (4, 2) if quick else (8, 3)
+    contexts = {n: bench_step.context_ids(prompt, n) for n in CONTEXTS}
+    steps, rounds = (6, 1) if quick else (16, 3)
     rows: list[Row] = [Row("setup", "model, threads, lean matmuls", lm.name,
                            f"{torch.get_num_threads()} threads, "
                            f"{'oneDNN packed' if runners['lean'].packed else 'F.linear'}")]
 
-    def section(name: str, make: object) -> None:
-        print(f"... {name}", file=sys.stderr, flush=True)
-        rows.extend(make())  # type: ignore[operator]
+    def section(name: str) -> None:
+        print(f"... {name} ({time.perf_counter() - started:.0f} s)", file=sys.stderr, flush=True)
 
-    section("parity", lambda: parity_rows(lm, runners, contexts[50]))
-    grid: dict = {}
-    section("decode steps", lambda: grid.update(
-        bench_step.step_grid(runners, contexts, PANES, steps, rounds)) or bench_step.step_rows(grid, lengths, PANES))
-    section("prefill", lambda: bench_step.prefill_rows(runners, contexts, rounds))
+    section("parity")
+    rows += bench_precision.parity_rows(lm.model, {**runners, "lean, whole sums": whole},
+                                        contexts[50], 30 if quick else 100)
+    section("decode steps")
+    grid = bench_step.step_grid(runners, contexts, PANES, steps)
+    rows += bench_step.step_rows(grid, CONTEXTS, PANES)
+    rows += bench_step.chunk_rows(runners["lean"], whole, contexts[50], steps)
+    section("prefill")
+    rows += bench_step.prefill_rows(runners, contexts, rounds)
     if not quick:
-        section("matmul layouts", lambda: bench_step.matmul_rows(lm.model, rounds))
-        section("threads", lambda: bench_step.thread_rows(runners["lean"], contexts[50], steps, rounds))
-    tokens = 12 if quick else 32
-    section("generate() vs engine", lambda: bench_runs.run_rows(lm, runners, prompt, tokens, 1 if quick else 2))
-    section("recipe math", lambda: bench_runs.recipe_share_rows(
-        lm, runners["lean"], prompt, grid[("lean", 50, 4)], rounds))
-    section("bfloat16", lambda: bench_step.bf16_rows(lm.model, runners["lean"], prompt, 50, rounds, steps))
-    section("start", lambda: bench_runs.start_rows(args.cold, args.model))
+        section("matmul layouts")
+        rows += bench_step.matmul_rows(lm.model, rounds)
+        section("threads")
+        rows += bench_step.thread_rows(runners["lean"], contexts[50], steps)
+    section("generate() vs engine")
+    rows += bench_runs.run_rows(lm, runners, prompt, 12 if quick else 32, 1 if quick else 2)
+    section("recipe math")
+    rows += bench_runs.recipe_share_rows(runners["lean"], prompt, grid[("lean", 50, 4)], rounds)
+    section("bfloat16")
+    rows += bench_precision.bf16_rows(lm.model, runners["lean"], prompt, 50, steps)
+    section("sweep")
+    rows += sweep_rows(lm, quick)
+    section("start")
+    rows += bench_runs.start_rows(args.cold, args.model)
     print(render(rows))
-    misses = sum(r.status == "MISS" for r in rows)
-    print(f"\n{len(rows)} rows, {sum(r.status == 'PASS' for r in rows)} targets met, {misses} missed; "
-          f"{time.perf_counter() - started:.0f} s")
+    met = sum(r.status == "PASS" for r in rows)
+    missed = sum(r.status == "MISS" for r in rows)
+    print(f"\n{met} targets met, {missed} missed; {time.perf_counter() - started:.0f} s")
     return 0
 
 

@@ -1,4 +1,4 @@
-"""Benchmark parts that time the forward paths: decode steps, prefill, matmul layouts, bfloat16.
+"""Benchmark parts that time the forward paths: decode steps, prefill, matmul layouts, threads.
 
 Every comparison is measured in one run with the variants interleaved round by round
 (the machine is shared and noisy), and reported as medians and ratios.
@@ -6,10 +6,10 @@ Every comparison is measured in one run with the variants interleaved round by r
 
 from __future__ import annotations
 
-import copy
 import statistics
 import time
 from dataclasses import dataclass
+from types import SimpleNamespace
 from typing import Any, Callable, Sequence
 
 import torch
@@ -49,30 +49,41 @@ def timed(fn: Callable[[], Any]) -> float:
 
 # ----- decode steps ------------------------------------------------------------------
 
+def decode_state(runner: Any, ctx: Sequence[int], panes: int) -> Any:
+    """A cache of `panes` rows after the prefilled context and one warm-up step."""
+    kv, _ = runner.prefill([list(ctx)])
+    kv, _ = runner.step(kv.select([0] * panes), [ctx[0]] * panes)  # first touch of the buffers
+    return kv
+
+
 def step_times(runner: Any, ctx: Sequence[int], panes: int, steps: int) -> list[float]:
     """Seconds per decode step at `panes` rows after a prefilled context."""
-    kv, _ = runner.prefill([list(ctx)])
-    kv = kv.select([0] * panes)
-    kv, _ = runner.step(kv, [ctx[0]] * panes)  # warm-up: first touch of the buffers
-    times = []
+    return interleaved_steps({"only": (runner, panes)}, ctx, steps)["only"]
+
+
+def interleaved_steps(variants: dict[Any, tuple[Any, int]], ctx: Sequence[int],
+                      steps: int) -> dict[Any, list[float]]:
+    """Step every variant (runner, panes) once per round, so that all see the same load."""
+    states = {key: decode_state(runner, ctx, panes) for key, (runner, panes) in variants.items()}
+    times: dict[Any, list[float]] = {key: [] for key in variants}
     for i in range(steps):
-        tokens = [ctx[(i + r) % len(ctx)] for r in range(panes)]
-        start = time.perf_counter()
-        kv, _ = runner.step(kv, tokens)
-        times.append(time.perf_counter() - start)
+        for key, (runner, panes) in variants.items():
+            tokens = [ctx[(i + r) % len(ctx)] for r in range(panes)]
+            start = time.perf_counter()
+            states[key], _ = runner.step(states[key], tokens)
+            times[key].append(time.perf_counter() - start)
     return times
 
 
 def step_grid(runners: dict[str, Any], contexts: dict[int, list[int]], panes: Sequence[int],
-              steps: int, rounds: int) -> dict[tuple[str, int, int], float]:
-    """Median step seconds per (path, context length, panes), rounds interleaved."""
-    samples: dict[tuple[str, int, int], list[float]] = {}
-    for _ in range(rounds):
-        for n, ctx in contexts.items():
-            for p in panes:
-                for name, runner in runners.items():
-                    samples.setdefault((name, n, p), []).extend(step_times(runner, ctx, p, steps))
-    return {key: statistics.median(v) for key, v in samples.items()}
+              steps: int) -> dict[tuple[str, int, int], float]:
+    """Median step seconds per (path, context length, panes), all variants interleaved."""
+    grid = {}
+    for n, ctx in contexts.items():
+        variants = {(name, n, p): (runner, p) for name, runner in runners.items() for p in panes}
+        for key, times in interleaved_steps(variants, ctx, steps).items():
+            grid[key] = statistics.median(times)
+    return grid
 
 
 def step_rows(grid: dict[tuple[str, int, int], float], contexts: Sequence[int],
@@ -94,6 +105,21 @@ def step_rows(grid: dict[tuple[str, int, int], float], contexts: Sequence[int],
     return rows
 
 
+def chunk_rows(chunked: Any, whole: Any, ctx: list[int], steps: int) -> list[Row]:
+    """The lean step with oneDNN sums in chunks (the default) against whole-row sums."""
+    variants = {(name, p): (runner, p) for name, runner in (("chunked", chunked), ("whole", whole))
+                for p in (1, 4)}
+    t = {key: statistics.median(v) for key, v in interleaved_steps(variants, ctx, steps).items()}
+    rows = []
+    for p in (1, 4):
+        rows.append(Row("step", f"ctx {len(ctx)}, {p} pane{'s' if p > 1 else ''}, lean with whole-row sums",
+                        ms(t[("whole", p)]), f"chunked sums cost {t[('chunked', p)] / t[('whole', p)]:.2f}x"))
+    ratio = t[("whole", 4)] / t[("whole", 1)]
+    rows.append(Row("step", f"4-pane / 1-pane step, ctx {len(ctx)}, lean with whole-row sums", f"{ratio:.2f}",
+                    "", "<= 1.5", verdict(ratio <= 1.5)))
+    return rows
+
+
 def prefill_rows(runners: dict[str, Any], contexts: dict[int, list[int]], rounds: int) -> list[Row]:
     samples: dict[tuple[str, int], list[float]] = {}
     for _ in range(rounds):
@@ -112,30 +138,36 @@ def prefill_rows(runners: dict[str, Any], contexts: dict[int, list[int]], rounds
 # ----- matmul layouts (the ideas tried for the small-batch matmul cost) -------------------
 
 def matmul_rows(model: Any, rounds: int) -> list[Row]:
-    """The output projection (V x E) and one gate/up weight at 1 and 4 rows, several layouts."""
-    from tui.lean_llama import PackedLinear, onednn_works
+    """The output projection (V x E) and one gate/up weight at 1 and 4 rows, several layouts.
+
+    Beside each time: the mean |error| against a float64 matmul, relative to F.linear's.
+    """
+    from tui.lean_llama import HEAD_K_CHUNK, K_CHUNK, PackedLinear, onednn_works
 
     head = model.get_output_embeddings().weight.detach()  # (V, E)
     mlp = model.model.layers[0].mlp
     gate_up = torch.cat([mlp.gate_proj.weight.detach(), mlp.up_proj.weight.detach()])  # (2I, E)
     rows = []
-    for label, w in (("output projection", head), ("one layer's gate/up", gate_up)):
+    for label, w, k_chunk in (("output projection", head, HEAD_K_CHUNK), ("one layer's gate/up", gate_up, K_CHUNK)):
         w_t = w.t().contiguous()  # (E, N), pre-transposed
-        chunks = w.split(max(1, w.shape[0] // 8))  # 8 row blocks of the weight
+        blocks = w.split(max(1, w.shape[0] // 8))  # 8 row blocks of the weight
         variants: dict[str, Callable[[torch.Tensor], torch.Tensor]] = {
             "F.linear": lambda x: F.linear(x, w),
             "mm, pre-transposed W": lambda x: torch.mm(x, w_t),
             "W @ x^T": lambda x: torch.mm(w, x.t()).t(),
-            "8 vocabulary chunks": lambda x: torch.cat([F.linear(x, c) for c in chunks], dim=1),
+            "8 vocabulary chunks": lambda x: torch.cat([F.linear(x, c) for c in blocks], dim=1),
         }
         if onednn_works(w.dtype):
-            packed = PackedLinear(w, None, packed=True)
-            variants["oneDNN packed"] = packed
+            one = SimpleNamespace(weight=w, bias=None)
+            variants["oneDNN packed"] = PackedLinear([one], packed=True)
+            variants[f"oneDNN, sums in {k_chunk}-column chunks"] = PackedLinear([one], packed=True, k_chunk=k_chunk)
         reps = 1 if w.shape[0] > 10_000 else 30
         for b in (1, 4):
-            x = torch.randn(b, w.shape[1], dtype=w.dtype)
+            x = torch.randn(b, w.shape[1], dtype=w.dtype, generator=torch.Generator().manual_seed(b))
             samples: dict[str, list[float]] = {k: [] for k in variants}
             with torch.inference_mode():
+                exact = F.linear(x.double(), w.double())
+                error = {k: float((fn(x).double() - exact).abs().mean()) for k, fn in variants.items()}
                 for _ in range(rounds * 5):
                     for name, fn in variants.items():
                         samples[name].append(timed(lambda: [fn(x) for _ in range(reps)]) / reps)
@@ -143,65 +175,27 @@ def matmul_rows(model: Any, rounds: int) -> list[Row]:
             for name in variants:
                 t = statistics.median(samples[name])
                 rows.append(Row("matmul", f"{label} {tuple(w.shape)}, {b} row{'s' if b > 1 else ''}, {name}",
-                                f"{t * 1e3:.2f} ms", f"{base / t:.2f}x F.linear"))
+                                f"{t * 1e3:.2f} ms", f"{base / t:.2f}x F.linear's speed, "
+                                f"{error[name] / error['F.linear']:.2f}x its error"))
     return rows
 
 
-def thread_rows(runner: Any, ctx: list[int], steps: int, rounds: int) -> list[Row]:
-    """The lean 4-pane step with 1 thread and with torch's default thread count."""
+def thread_rows(runner: Any, ctx: list[int], steps: int) -> list[Row]:
+    """The lean 4-pane step with 1 thread and with torch's default thread count, interleaved."""
     default = torch.get_num_threads()
+    if default == 1:
+        return [Row("threads", "lean 4-pane step, 1 thread (default)", ms(statistics.median(step_times(runner, ctx, 4, steps))))]
+    kv = {n: decode_state(runner, ctx, 4) for n in (default, 1)}
     samples: dict[int, list[float]] = {default: [], 1: []}
     try:
-        for _ in range(rounds):
+        for i in range(steps):
             for n in samples:
                 torch.set_num_threads(n)
-                samples[n].extend(step_times(runner, ctx, 4, steps))
+                start = time.perf_counter()
+                kv[n], _ = runner.step(kv[n], [ctx[(i + r) % len(ctx)] for r in range(4)])
+                samples[n].append(time.perf_counter() - start)
     finally:
         torch.set_num_threads(default)
     one, many = statistics.median(samples[1]), statistics.median(samples[default])
     return [Row("threads", f"lean 4-pane step, {default} threads (default)", ms(many)),
             Row("threads", "lean 4-pane step, 1 thread", ms(one), f"{one / many:.2f}x the default")]
-
-
-# ----- bfloat16 ----------------------------------------------------------------------
-
-def greedy_logits(runner: Any, prompt: list[int], steps: int,
-                  forced: Sequence[int] | None = None) -> tuple[list[int], list[torch.Tensor]]:
-    """Greedy tokens and the logits before each, or the logits along `forced` tokens."""
-    kv, logits = runner.prefill([prompt])
-    tokens, seen = [], []
-    for i in range(steps):
-        seen.append(logits[0])
-        tokens.append(int(logits[0].argmax()) if forced is None else int(forced[i]))
-        kv, logits = runner.step(kv, [tokens[-1]])
-    return tokens, seen
-
-
-def bf16_rows(model: Any, lean32: Any, prompt: list[int], steps: int, step_rounds: int,
-              step_count: int) -> list[Row]:
-    """bfloat16's deviation from float32 over greedy steps, and its 4-pane step time."""
-    from tui.lean_llama import LeanRunner
-
-    model16 = copy.deepcopy(model).to(torch.bfloat16)
-    lean16 = LeanRunner(model16)
-    ref_tokens, ref_logits = greedy_logits(lean32, prompt, steps)
-    _, forced_logits = greedy_logits(lean16, prompt, steps, forced=ref_tokens)  # same context
-    free_tokens, _ = greedy_logits(lean16, prompt, steps)
-    agree = sum(int(a.argmax()) == int(b.argmax()) for a, b in zip(ref_logits, forced_logits))
-    deltas = torch.stack([(a - b).abs() for a, b in zip(ref_logits, forced_logits)])  # (steps, V)
-    diverge = next((i for i, (a, b) in enumerate(zip(ref_tokens, free_tokens)) if a != b), None)
-    samples: dict[str, list[float]] = {"float32": [], "bfloat16": []}
-    for _ in range(step_rounds):
-        samples["float32"].extend(step_times(lean32, prompt, 4, step_count))
-        samples["bfloat16"].extend(step_times(lean16, prompt, 4, step_count))
-    t32, t16 = statistics.median(samples["float32"]), statistics.median(samples["bfloat16"])
-    return [
-        Row("bfloat16", f"top-1 agreement with float32, {steps} greedy steps", f"{agree}/{steps}",
-            "teacher-forced on the float32 tokens"),
-        Row("bfloat16", "mean |delta logit| vs float32", f"{float(deltas.mean()):.3f}",
-            f"max {float(deltas.max()):.2f}"),
-        Row("bfloat16", "free-running greedy text diverges at step",
-            "never" if diverge is None else str(diverge), f"of {steps}"),
-        Row("bfloat16", "lean 4-pane step, bfloat16", ms(t16), f"{t32 / t16:.2f}x faster than float32 ({ms(t32)})"
-            + ("" if lean16.packed else "; oneDNN bf16 unavailable, plain F.linear")),
-    ]

@@ -6,20 +6,21 @@ runs the same computation with everything prepared once:
 
 - q/k/v fused into one weight, gate/up into another: one matmul each;
 - every weight packed once for oneDNN (`torch.ops.mkldnn`), whose fp32 kernels run several
-  times faster than torch's default at 2-8 rows on this CPU; plain `F.linear` otherwise;
+  times faster than torch's default (MKL) at 2-8 rows on this CPU; in float32 each sum runs
+  over chunks of input columns (see `PackedLinear`) to stay within 1e-4 of transformers;
+  plain `F.linear` where oneDNN is missing;
 - rotary cos/sin tables precomputed per position;
 - a preallocated KV cache written in place (ownership rule: `tui.forward.KV`);
 - SDPA attention over the cache; at decode the query heads of a group share one kv head
   by being folded into query rows, so no kv head is ever repeated.
 
-About 30 ops per layer. Reference: transformers 5.24.0 `models/llama/modeling_llama.py`
+About 30 to 40 ops per layer. Reference: transformers 5.24.0 `models/llama/modeling_llama.py`
 and `models/qwen2/modeling_qwen2.py`; tests/test_forward.py holds logits to 1e-4.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
-from types import SimpleNamespace
 from typing import Any, Sequence
 
 import torch
@@ -30,7 +31,10 @@ from tui.forward import KV, WriteMark
 SUPPORTED_MODELS = {"llama": "LlamaForCausalLM", "qwen2": "Qwen2ForCausalLM"}
 STATIC_ROPE = ("default", "linear", "llama3")  # inv_freq fixed at load; dynamic/longrope/yarn refused
 CACHE_BUCKET = 256  # cache capacity grows in steps of this many positions
-PLAIN_ROWS = 16  # from this many rows on (prefill), the model's own weights and F.linear
+K_CHUNK = 288  # oneDNN matmuls sum at most this many input columns in one chain...
+HEAD_K_CHUNK = 192  # ...and this many in the output projection (cheap there: few calls)
+_LINEAR = getattr(getattr(torch.ops.mkldnn, "_linear_pointwise", None), "default", None)
+_LINEAR_ADD = getattr(getattr(torch.ops.mkldnn, "_linear_pointwise", None), "binary", None)
 
 
 def lean_refusal(model: Any) -> str | None:
@@ -57,20 +61,27 @@ def lean_refusal(model: Any) -> str | None:
 class PackedLinear:
     """Linears that read the same input, as one: y = x [W1; W2; ...]^T + [b1; b2; ...] (+ residual).
 
-    Few rows (decode) run one matmul on the fused weight, packed once for oneDNN when
-    `packed`. Many rows (prefill, whole-sequence logits) run the model's own weights
-    with F.linear, the kernels transformers uses, so those logits match it exactly.
-    Unpacked, the model's weights become views of the fused one: no extra memory.
+    Decode steps run oneDNN on the fused weight, packed once, in chunks of at most
+    `k_chunk` input columns whose partial sums are then added: oneDNN adds up a whole
+    row in one fp32 chain, and shorter chains keep its logits within 1e-4 of
+    transformers' (measured by `make bench`). Blocks of tokens (prefill, whole-sequence
+    logits) run the model's own weights with F.linear, the kernels transformers uses.
+    Unpacked (no oneDNN), the model's weights become views of the fused one: no extra memory.
     """
 
-    def __init__(self, linears: Sequence[Any], packed: bool) -> None:
+    def __init__(self, linears: Sequence[Any], packed: bool, k_chunk: int | None = None) -> None:
         weights = [lin.weight.detach() for lin in linears]
         self.parts = tuple((w, lin.bias) for w, lin in zip(weights, linears))  # shared with the model
         self.bias = _cat_bias(linears)
         self.packed = packed
         fused = weights[0] if len(weights) == 1 else torch.cat(weights)  # (sum out, in)
+        k = fused.shape[1]
+        n = 1 if not k_chunk else -(-k // k_chunk)  # equal chunks, none longer than k_chunk
+        size = -(-k // n)
+        self.bounds = tuple((a, min(a + size, k)) for a in range(0, k, size))
         if packed:
-            self.weight = torch.ops.mkldnn._reorder_linear_weight(fused.contiguous())
+            self.chunks = tuple(torch.ops.mkldnn._reorder_linear_weight(fused[:, a:b].contiguous())
+                                for a, b in self.bounds)
         else:
             self.weight = fused
             at = 0
@@ -78,17 +89,34 @@ class PackedLinear:
                 lin.weight.data = fused[at:at + w.shape[0]]
                 at += w.shape[0]
 
-    def __call__(self, x: torch.Tensor, residual: torch.Tensor | None = None) -> torch.Tensor:
+    def __call__(self, x: torch.Tensor, residual: torch.Tensor | None = None,
+                 decode: bool = True) -> torch.Tensor:
         # x: (N, in), residual: (N, out) -> (N, out)
-        if self.packed and x.shape[0] < PLAIN_ROWS:
-            if residual is None:
-                return torch.ops.mkldnn._linear_pointwise(x, self.weight, self.bias, "none", [], "")
-            return torch.ops.mkldnn._linear_pointwise.binary(x, residual, self.weight, self.bias, "add")
+        if self.packed and decode:
+            return self._onednn(x, residual)
         if self.packed:
             y = torch.cat([F.linear(x, w, b) for w, b in self.parts], dim=-1)
         else:
             y = F.linear(x, self.weight, self.bias)
         return y if residual is None else residual + y
+
+    def _onednn(self, x: torch.Tensor, residual: torch.Tensor | None) -> torch.Tensor:
+        if len(self.chunks) == 1:  # the residual add fused into the matmul
+            if residual is None:
+                return _LINEAR(x, self.chunks[0], self.bias, "none", [], "")
+            return _LINEAR_ADD(x, residual, self.chunks[0], self.bias, "add")
+        parts = self._split(x)  # contiguous column blocks of x, one per weight chunk
+        y = _LINEAR(parts[0], self.chunks[0], self.bias, "none", [], "")
+        for part, w in zip(parts[1:], self.chunks[1:]):  # y += x[:, a:b] W[:, a:b]^T
+            y = _LINEAR_ADD(part, y, w, None, "add")
+        return y if residual is None else residual + y
+
+    def _split(self, x: torch.Tensor) -> Sequence[torch.Tensor]:
+        """x (N, in) as contiguous (N, chunk) blocks: one copy when the chunks are equal."""
+        n, k = len(self.bounds), x.shape[1]
+        if k % n:
+            return [x[:, a:b].contiguous() for a, b in self.bounds]
+        return x.view(x.shape[0], n, k // n).transpose(0, 1).contiguous()  # (n, N, k/n)
 
 
 def _cat_bias(linears: Sequence[Any]) -> torch.Tensor | None:
@@ -102,12 +130,12 @@ def _cat_bias(linears: Sequence[Any]) -> torch.Tensor | None:
 def onednn_works(dtype: torch.dtype) -> bool:
     """Is oneDNN's packed linear present here and does it agree with F.linear?"""
     try:
-        if not torch.backends.mkldnn.is_available():
+        if not torch.backends.mkldnn.is_available() or _LINEAR is None or _LINEAR_ADD is None:
             return False
         gen = torch.Generator().manual_seed(0)
         w = torch.randn(96, 64, generator=gen).to(dtype)
         x = torch.randn(3, 64, generator=gen).to(dtype)
-        got = PackedLinear([SimpleNamespace(weight=w, bias=None)], packed=True)(x).float()
+        got = _LINEAR(x, torch.ops.mkldnn._reorder_linear_weight(w), None, "none", [], "").float()
         return bool(torch.allclose(got, F.linear(x, w).float(), rtol=1e-2, atol=1e-2))
     except (RuntimeError, AttributeError, NotImplementedError):
         return False
@@ -130,7 +158,9 @@ class LeanRunner:
 
     kind = "lean"
 
-    def __init__(self, model: Any, packed: bool | None = None) -> None:
+    def __init__(self, model: Any, packed: bool | None = None, chunked: bool | None = None) -> None:
+        """`packed`: use oneDNN (None: when it works here); `chunked`: split its sums
+        (K_CHUNK; None: in float32 only, as each partial sum would be rounded to bfloat16)."""
         reason = lean_refusal(model)
         if reason is not None:
             raise ValueError(f"lean path: {reason}")
@@ -140,6 +170,8 @@ class LeanRunner:
         body = model.model
         self.dtype = body.embed_tokens.weight.dtype
         self.packed = onednn_works(self.dtype) if packed is None else packed
+        chunked = self.dtype == torch.float32 if chunked is None else chunked
+        self.k_chunk = K_CHUNK if chunked else None
         self.n_heads = cfg.num_attention_heads
         self.n_kv = cfg.num_key_value_heads
         self.head_dim = getattr(cfg, "head_dim", None) or cfg.hidden_size // self.n_heads
@@ -150,7 +182,7 @@ class LeanRunner:
         self.layers = tuple(self._layer(layer) for layer in body.layers)
         self.final_norm = body.norm.weight.detach()
         head = model.get_output_embeddings()
-        self.lm_head = PackedLinear([head], self.packed)  # E -> V
+        self.lm_head = PackedLinear([head], self.packed, HEAD_K_CHUNK if chunked else None)  # E -> V
         self.vocab_size = int(head.weight.shape[0])
         rotary = body.rotary_emb  # transformers' own inv_freq, so rope scaling matches it
         self.inv_freq = rotary.inv_freq.detach().float()  # (D/2,)
@@ -162,11 +194,11 @@ class LeanRunner:
         att, mlp = layer.self_attn, layer.mlp
         return LayerWeights(
             attn_norm=layer.input_layernorm.weight.detach(),
-            qkv=PackedLinear([att.q_proj, att.k_proj, att.v_proj], self.packed),
-            out=PackedLinear([att.o_proj], self.packed),
+            qkv=PackedLinear([att.q_proj, att.k_proj, att.v_proj], self.packed, self.k_chunk),
+            out=PackedLinear([att.o_proj], self.packed, self.k_chunk),
             mlp_norm=layer.post_attention_layernorm.weight.detach(),
-            gate_up=PackedLinear([mlp.gate_proj, mlp.up_proj], self.packed),
-            down=PackedLinear([mlp.down_proj], self.packed),
+            gate_up=PackedLinear([mlp.gate_proj, mlp.up_proj], self.packed, self.k_chunk),
+            down=PackedLinear([mlp.down_proj], self.packed, self.k_chunk),
         )
 
     def _rope_tables(self, n: int) -> None:
@@ -191,7 +223,7 @@ class LeanRunner:
         """Feed equal-length token blocks (B, T) after an existing cache of B rows."""
         x = torch.as_tensor([list(r) for r in ids], dtype=torch.long)  # (B, T)
         kv, h = self._forward(x, kv)
-        return kv, self._logits(h[:, -1]).float()  # (B, V)
+        return kv, self._logits(h[:, -1], decode=x.shape[1] == 1).float()  # (B, V)
 
     def step(self, kv: KV, tokens: Sequence[int]) -> tuple[KV, torch.Tensor]:
         """One decode step: one new token per row. Returns the cache and logits (B, V)."""
@@ -201,7 +233,7 @@ class LeanRunner:
     def logits_of(self, ids: Sequence[int]) -> torch.Tensor:
         """Logits (T, V) of a whole sequence, no cache kept: for log-likelihoods and inspect."""
         _, h = self._forward(torch.as_tensor([list(ids)], dtype=torch.long), KV())
-        return self._logits(h[0]).float()
+        return self._logits(h[0], decode=False).float()
 
     # ----- the model -------------------------------------------------------------------
 
@@ -217,20 +249,21 @@ class LeanRunner:
         cos, sin = self.cos[start:end], self.sin[start:end]  # (T, D)
         Hq, Hkv, D = self.n_heads, self.n_kv, self.head_dim
         x = F.embedding(ids, self.embed).view(B * T, self.hidden)  # (BT, E)
+        dec = T == 1  # one token per row: the packed weights; a block: transformers' kernels
         for w, (keys, values) in zip(self.layers, kv.layers):
             # attention: fused q/k/v, rotary on q and k together, cache written in place
             h = F.rms_norm(x, (self.hidden,), w.attn_norm, self.eps)  # (BT, E)
-            qkv = w.qkv(h).view(B, T, Hq + 2 * Hkv, D).transpose(1, 2)  # (B, Hq+2Hkv, T, D)
+            qkv = w.qkv(h, decode=dec).view(B, T, Hq + 2 * Hkv, D).transpose(1, 2)  # (B, Hq+2Hkv, T, D)
             qk = qkv[:, :Hq + Hkv]
             qk = qk * cos + qk.roll(D // 2, dims=-1) * sin  # (B, Hq+Hkv, T, D)
             keys[:, :, start:end] = qk[:, Hq:]
             values[:, :, start:end] = qkv[:, Hq + Hkv:]
             att = self._attend(qk[:, :Hq], keys[:, :, :end], values[:, :, :end], start)  # (BT, Hq D)
-            x = w.out(att, residual=x)  # (BT, E)
+            x = w.out(att, residual=x, decode=dec)  # (BT, E)
             # MLP: fused gate/up, SiLU gate
             h = F.rms_norm(x, (self.hidden,), w.mlp_norm, self.eps)
-            gate, up = w.gate_up(h).chunk(2, dim=-1)  # (BT, I) each
-            x = w.down(F.silu(gate) * up, residual=x)  # (BT, E)
+            gate, up = w.gate_up(h, decode=dec).chunk(2, dim=-1)  # (BT, I) each
+            x = w.down(F.silu(gate) * up, residual=x, decode=dec)  # (BT, E)
         mark = kv.mark
         assert mark is not None
         mark.end = end
@@ -254,10 +287,10 @@ class LeanRunner:
                                                  scale=self.scale, enable_gqa=True)
         return out.transpose(1, 2).reshape(B * T, Hq * D)
 
-    def _logits(self, h: torch.Tensor) -> torch.Tensor:
+    def _logits(self, h: torch.Tensor, decode: bool) -> torch.Tensor:
         """Final norm and output projection: hidden (N, E) -> logits (N, V)."""
         h = F.rms_norm(h, (self.hidden,), self.final_norm, self.eps)
-        return self.lm_head(h.contiguous())
+        return self.lm_head(h.contiguous(), decode=decode)
 
     def _room(self, kv: KV, rows: int, extra: int) -> KV:
         """`kv` if it may be written in place for `extra` more positions, else a roomier copy."""
