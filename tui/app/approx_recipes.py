@@ -24,14 +24,13 @@ from typing import Sequence
 
 import numpy as np
 
-from tui.app.step_analysis import RecipeRow, recipe_at
-from tui.decoding import Recipe, RecipeError
+from tui.app.step_analysis import RecipeRow, each_recipe
+
 from tui.record import StepRecord
 from tui.views import PaneView
 
 MAX_TAIL = 1 << 18  # more tail slots than any common vocabulary has tokens
 TAIL_MARGIN = 1e-6  # relative gap between a tail share and the least likely stored token
-
 
 @dataclass(frozen=True)
 class PartialLogits:
@@ -42,7 +41,6 @@ class PartialLogits:
     stored: int  # slots 0..stored-1 are the stored tokens
     tail: int  # slots stored..stored+tail-1 share the missing mass
     stored_mass: float  # raw mass of the stored tokens (sum of their probabilities)
-
 
 def partial_logits(record: StepRecord, history: Sequence[int] = ()) -> PartialLogits:
     """The stand-in for `record`'s raw distribution (see the module docstring)."""
@@ -64,27 +62,17 @@ def partial_logits(record: StepRecord, history: Sequence[int] = ()) -> PartialLo
                              np.full(len(masked), -np.inf)])
     return PartialLogits(logits, index, len(ids), tail, mass)
 
-
 def approx_recipe_rows(record: StepRecord, history: Sequence[int], own: PaneView,
                        panes: Sequence[PaneView]) -> tuple[RecipeRow, ...]:
     """Each pane's recipe (as at this step) on the stand-in; the own row is exact."""
     part = partial_logits(record, history)
     context = [part.index[t] for t in history]
     chosen = part.index[record.token_id]
-    rows: list[RecipeRow] = []
-    for pane in panes:
-        recipe = recipe_at(pane, record.step)
-        if pane.id == own.id:
-            rows.append(RecipeRow(pane.id, pane.name, recipe, record.kept, record.final_prob,
-                                  True))
-            continue
-        try:
-            final = Recipe.parse(recipe).distribution(part.logits, context)
-        except (RecipeError, ValueError) as exc:
-            rows.append(RecipeRow(pane.id, pane.name, recipe, 0, 0.0, False, str(exc)))
-            continue
+    def row(pane: PaneView, recipe: str, final: np.ndarray) -> RecipeRow:
         kept_stored = int(np.count_nonzero(final[:part.stored]))
         beyond = bool(np.count_nonzero(final[part.stored:part.stored + part.tail]))
-        rows.append(RecipeRow(pane.id, pane.name, recipe, kept_stored, float(final[chosen]),
-                              False, approx=True, kept_beyond=beyond))
-    return tuple(rows)
+        return RecipeRow(pane.id, pane.name, recipe, kept_stored, float(final[chosen]),
+                         False, approx=True, kept_beyond=beyond)
+
+    return each_recipe(record, own, panes,
+                       lambda recipe: recipe.distribution(part.logits, context), row)

@@ -10,7 +10,7 @@ worker thread (they may need a forward pass for the logits).
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Sequence
+from typing import Callable, Sequence
 
 import numpy as np
 
@@ -92,6 +92,17 @@ def recipe_rows(logits: np.ndarray, history: Sequence[int], record: StepRecord,
     The inspected pane's own row is exact (from its record). The others start their
     stages from the initial state, so a stateful stage (mirostat) reads as on step one.
     """
+    return each_recipe(
+        record, own, panes, lambda recipe: recipe.distribution(logits, history),
+        lambda pane, text, final: RecipeRow(pane.id, pane.name, text,
+                                            int(np.count_nonzero(final)),
+                                            float(final[record.token_id]), False))
+
+
+def each_recipe(record: StepRecord, own: PaneView, panes: Sequence[PaneView],
+                run: Callable[[Recipe], np.ndarray],
+                row: Callable[[PaneView, str, np.ndarray], RecipeRow]) -> tuple[RecipeRow, ...]:
+    """One row per pane: `own` exact from its record, the others `row(run(recipe))`."""
     rows: list[RecipeRow] = []
     for pane in panes:
         recipe = recipe_at(pane, record.step)
@@ -100,12 +111,11 @@ def recipe_rows(logits: np.ndarray, history: Sequence[int], record: StepRecord,
                                   True))
             continue
         try:
-            final = Recipe.parse(recipe).distribution(logits, history)
+            final = run(Recipe.parse(recipe))
         except (RecipeError, ValueError) as exc:
             rows.append(RecipeRow(pane.id, pane.name, recipe, 0, 0.0, False, str(exc)))
             continue
-        rows.append(RecipeRow(pane.id, pane.name, recipe, int(np.count_nonzero(final)),
-                              float(final[record.token_id]), False))
+        rows.append(row(pane, recipe, final))
     return tuple(rows)
 
 
