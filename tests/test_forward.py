@@ -16,9 +16,12 @@ from tui.errors import UserError
 from tui.forward import FORWARD_ENV, KV, Runner, make_runner
 from tui.lean_llama import LeanRunner, lean_refusal
 
+try:
+    from tiny_model import LAYERS_VOCAB as VOCAB, tiny_llama, tiny_qwen2
+except ImportError:
+    from tests.tiny_model import LAYERS_VOCAB as VOCAB, tiny_llama, tiny_qwen2
+
 TOL = 1e-4  # the project's parity tolerance (issue 2), in logits
-VOCAB = 128
-SEED = 7
 
 LLAMA3_ROPE = {"rope_type": "llama3", "rope_theta": 500000.0, "factor": 8.0, "low_freq_factor": 1.0,
                "high_freq_factor": 4.0, "original_max_position_embeddings": 16}
@@ -28,40 +31,6 @@ VARIANTS = {
     "llama3-rope": {"tie_word_embeddings": False, "rope_parameters": LLAMA3_ROPE},
     "biases": {"attention_bias": True, "mlp_bias": True},
 }
-
-
-def tiny_llama(**overrides: object) -> torch.nn.Module:
-    """hidden 64, 2 layers, 4 heads, 2 kv heads, vocab 128; weights std 0.3 so logits spread."""
-    from transformers import LlamaConfig, LlamaForCausalLM
-
-    cfg = dict(hidden_size=64, intermediate_size=96, num_hidden_layers=2, num_attention_heads=4,
-               num_key_value_heads=2, vocab_size=VOCAB, max_position_embeddings=128,
-               initializer_range=0.3, tie_word_embeddings=True)
-    cfg.update(overrides)
-    with torch.random.fork_rng(devices=[]):
-        torch.manual_seed(SEED)
-        return _random_biases(LlamaForCausalLM(LlamaConfig(**cfg)).eval())
-
-
-def _random_biases(model: torch.nn.Module) -> torch.nn.Module:
-    """transformers starts biases at zero, where a dropped bias would go unnoticed."""
-    with torch.no_grad():
-        for module in model.modules():
-            if isinstance(module, torch.nn.Linear) and module.bias is not None:
-                module.bias.normal_(0.0, 0.3)
-    return model
-
-
-def tiny_qwen2() -> torch.nn.Module:
-    """A Qwen2 of the same size: biases on q, k and v only."""
-    from transformers import Qwen2Config, Qwen2ForCausalLM
-
-    with torch.random.fork_rng(devices=[]):
-        torch.manual_seed(SEED)
-        return _random_biases(Qwen2ForCausalLM(Qwen2Config(
-            hidden_size=64, intermediate_size=96, num_hidden_layers=2, num_attention_heads=4,
-            num_key_value_heads=2, vocab_size=VOCAB, max_position_embeddings=128,
-            initializer_range=0.3, tie_word_embeddings=False)).eval())
 
 
 @torch.inference_mode()

@@ -346,6 +346,92 @@ def test_a_failed_conversion_leaves_no_cache_that_would_load(tiny_gguf: Path, mo
     assert [p.name for p in folder.parent.iterdir()] == [folder.name]  # stale temp swept
 
 
+# ---------------------------------------------------------------- warm starts read the cache directly
+
+
+def test_a_warm_start_reads_the_cache_directly_and_matches_transformers(tiny_gguf):
+    from tui.lean_llama import LeanRunner
+
+    cold = load_model(str(tiny_gguf))  # converts, then loads through transformers' Auto classes
+    folder = resolve(str(tiny_gguf)).folder
+    assert cold.checkpoint is None and model_cache.read_direct_record(folder) is not None
+    warm = load_model(str(tiny_gguf))
+    assert warm.checkpoint is not None and warm.loaded_model is None
+    # reference: what transformers' AutoTokenizer / AutoModelForCausalLM gave the cold load
+    assert type(warm.tokenizer) is type(cold.tokenizer)
+    chat = [{"role": "user", "content": "Hi é"}]
+    for prompt, messages in ((TEXT, None), ("", None), (None, chat)):
+        try:
+            expected = cold.encode_prompt(prompt, messages)
+        except UserError as exc:
+            with pytest.raises(UserError, match=str(exc)):
+                warm.encode_prompt(prompt, messages)
+            continue
+        assert warm.encode_prompt(prompt, messages) == expected
+    ids = cold.encode_prompt(TEXT, None)
+    assert warm.decode(ids) == cold.decode(ids)
+    assert (warm.eos_ids, warm.max_context) == (cold.eos_ids, cold.max_context)
+    kv, direct = warm.runner().prefill([ids])
+    _, built = LeanRunner(cold.model).prefill([ids])
+    assert torch.equal(direct, built)
+    assert torch.equal(reference_logits(warm.model, ids), reference_logits(cold.model, ids))  # loaded lazily
+    assert warm.loaded_model is not None
+
+
+def test_a_warm_start_in_a_fresh_process_imports_no_model_classes(tiny_gguf):
+    load_model(str(tiny_gguf))  # convert and record
+    code = ("import sys; from tui.models import load_model; "
+            f"lm = load_model({str(tiny_gguf)!r}); lm.runner().prefill([lm.encode_prompt('tea', None)]); "
+            "print(lm.checkpoint is not None, sorted(m for m in sys.modules "
+            "if m.startswith('transformers.models.') or m == 'transformers.modeling_utils'))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT,
+                         env={**os.environ, model_cache.CACHE_ENV: os.environ[model_cache.CACHE_ENV]})
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.split(None, 1) == ["True", "[]\n"]
+
+
+@pytest.mark.parametrize("record", [
+    {"transformers": "0.0.1"},  # written by another transformers version
+    {"tokenizer_module": "os"},  # names a module outside transformers
+    {"tokenizer_class": "not an identifier"},
+    {"format": 99},
+])
+def test_a_stale_or_foreign_record_loads_through_transformers_and_is_rewritten(tiny_gguf, record):
+    load_model(str(tiny_gguf))
+    path = resolve(str(tiny_gguf)).folder / model_cache.DIRECT
+    path.write_text(json.dumps({**json.loads(path.read_text()), **record}))
+    assert model_cache.read_direct_record(path.parent) is None
+    lm = load_model(str(tiny_gguf))
+    assert lm.checkpoint is None and lm.loaded_model is not None
+    assert model_cache.read_direct_record(path.parent) is not None  # rewritten by that load
+
+
+def test_a_cache_the_direct_reader_refuses_still_loads_through_transformers(tiny_gguf):
+    load_model(str(tiny_gguf))
+    config_path = resolve(str(tiny_gguf)).folder / "config.json"
+    config = json.loads(config_path.read_text())
+    config_path.write_text(json.dumps({**config, "hidden_act": "gelu"}))
+    lm = load_model(str(tiny_gguf))
+    assert lm.checkpoint is None and lm.model.config.hidden_act == "gelu"
+
+
+def test_the_generic_path_and_bfloat16_are_honoured_on_warm_starts(tiny_gguf, monkeypatch):
+    from tui.forward import FORWARD_ENV, Runner
+    from tui.lean_llama import LeanRunner
+
+    load_model(str(tiny_gguf))
+    monkeypatch.setenv(FORWARD_ENV, "generic")
+    generic = load_model(str(tiny_gguf))
+    assert generic.checkpoint is None and type(generic.runner()) is Runner
+    monkeypatch.delenv(FORWARD_ENV)
+    half = load_model(str(tiny_gguf), dtype="bfloat16")
+    assert half.checkpoint is not None and half.checkpoint.dtype == torch.bfloat16
+    ids = half.encode_prompt(TEXT, None)
+    # reference: transformers' model cast by `model.to(torch.bfloat16)`
+    assert torch.equal(half.runner().prefill([ids])[1], LeanRunner(half.model).prefill([ids])[1])
+    assert {p.dtype for p in half.model.parameters()} == {torch.bfloat16}
+
+
 def test_the_text_progress_bar_draws_in_place():
     stream = io.StringIO()
     bar = model_cache.TextProgressBar("converting x", stream=stream, width=10)
@@ -444,3 +530,13 @@ def test_the_embedded_model_cache_is_bit_identical_to_transformers_gguf_load(mon
     eos = int(reader.fields["tokenizer.ggml.eos_token_id"].contents())
     context = int(reader.fields["llama.context_length"].contents())
     assert lm.eos_ids == (eos,) and lm.max_context == context
+
+    # a warm start reads the cache directly: the same tokens, ids and logits, bit for bit
+    from tui.lean_llama import LeanRunner
+
+    warm = load_model(DEFAULT_MODEL)
+    assert warm.checkpoint is not None and warm.loaded_model is None
+    assert (warm.eos_ids, warm.max_context) == (lm.eos_ids, lm.max_context)
+    assert warm.encode_prompt(None, chat) == lm.encode_prompt(None, chat)
+    ids = lm.encode_prompt(texts[0], None)
+    assert torch.equal(warm.runner().prefill([ids])[1], LeanRunner(lm.model).prefill([ids])[1])

@@ -15,6 +15,7 @@ from __future__ import annotations
 import json
 import sys
 from pathlib import Path
+from typing import Any
 
 # The tokenizer's special tokens. EOS_TOKEN ends a text; the role tokens frame chat turns.
 EOS_TOKEN = "<|end|>"
@@ -177,6 +178,50 @@ def build_tiny_gguf(model_dir: str | Path, path: str | Path) -> Path:
     writer.write_tensors_to_file()
     writer.close()
     return path
+
+
+# ------------------------------------------------- bare models for the forward-path tests
+
+LAYERS_VOCAB = 128  # vocabulary of the bare models below (no tokenizer)
+LAYERS_SEED = 7
+
+
+def tiny_llama(**overrides: object) -> Any:
+    """hidden 64, 2 layers, 4 heads, 2 kv heads, vocab 128; weights std 0.3 so logits spread."""
+    import torch
+    from transformers import LlamaConfig, LlamaForCausalLM
+
+    cfg = dict(hidden_size=64, intermediate_size=96, num_hidden_layers=2, num_attention_heads=4,
+               num_key_value_heads=2, vocab_size=LAYERS_VOCAB, max_position_embeddings=128,
+               initializer_range=0.3, tie_word_embeddings=True)
+    cfg.update(overrides)
+    with torch.random.fork_rng(devices=[]):
+        torch.manual_seed(LAYERS_SEED)
+        return _random_biases(LlamaForCausalLM(LlamaConfig(**cfg)).eval())
+
+
+def _random_biases(model: Any) -> Any:
+    """transformers starts biases at zero, where a dropped bias would go unnoticed."""
+    import torch
+
+    with torch.no_grad():
+        for module in model.modules():
+            if isinstance(module, torch.nn.Linear) and module.bias is not None:
+                module.bias.normal_(0.0, 0.3)
+    return model
+
+
+def tiny_qwen2() -> Any:
+    """A Qwen2 of the same size: biases on q, k and v only."""
+    import torch
+    from transformers import Qwen2Config, Qwen2ForCausalLM
+
+    with torch.random.fork_rng(devices=[]):
+        torch.manual_seed(LAYERS_SEED)
+        return _random_biases(Qwen2ForCausalLM(Qwen2Config(
+            hidden_size=64, intermediate_size=96, num_hidden_layers=2, num_attention_heads=4,
+            num_key_value_heads=2, vocab_size=LAYERS_VOCAB, max_position_embeddings=128,
+            initializer_range=0.3, tie_word_embeddings=False)).eval())
 
 
 if __name__ == "__main__":

@@ -46,9 +46,8 @@ def bench_sweep(lm: LoadedModel, *, rows: int = 32, single_rows: int = 4,
     steady rate without tripling the run. Keys: rows_per_forward, tokens_per_s_batched,
     tokens_per_s_single, speedup, target_speedup, meets_target, new_tokens, forward.
     """
-    from tui.forward import make_runner
 
-    runner = make_runner(lm.model)
+    runner = lm.runner()
     batched, batched_tokens, batched_s = _rate(lm, runner, rows, rows, new_tokens)
     single, single_tokens, single_s = _rate(lm, runner, single_rows, 1, new_tokens)
     speedup = batched / single if single > 0 else float("nan")

@@ -1,6 +1,6 @@
 """The model side of a step: prefill, one batched decode step, and KV-cache rows.
 
-A runner hides which forward path is used; `make_runner(model)` picks one. The generic
+A runner hides which forward path is used; `make_runner` picks one. The generic
 `Runner` calls the transformers model with a `DynamicCache`; the lean one
 (`tui.lean_llama.LeanRunner`) runs llama-family models with fused weights and a cache
 written in place. A cache here is our own plain value, `KV`: one (keys, values) pair of
@@ -159,26 +159,41 @@ class Runner:
         return out.logits[0].float()
 
 
-def make_runner(model: Any) -> "Runner | LeanRunner":
-    """The fastest runner that supports `model`: the lean llama path, else the generic one.
-
-    `LOGITFORK_FORWARD=generic` forces the generic path; `=lean` insists on the lean
-    one (a UserError says why a model cannot take it); unset or `auto` chooses.
-    """
+def forward_choice() -> str:
+    """`LOGITFORK_FORWARD`: auto (unset), lean or generic; UserError for anything else."""
     from tui.errors import UserError
-    from tui.lean_llama import LeanRunner, lean_refusal
 
     choice = os.environ.get(FORWARD_ENV, "auto").strip().lower() or "auto"
     if choice not in ("auto", "lean", "generic"):
         raise UserError(f"{FORWARD_ENV}: must be auto, lean or generic, got {choice!r}")
+    return choice
+
+
+def make_runner(source: Any) -> "Runner | LeanRunner":
+    """The fastest runner for `source`: the lean llama path, else the generic one.
+
+    `source` is a transformers model, or a `LlamaCheckpoint` read without one (which
+    only the lean path runs). `LOGITFORK_FORWARD=generic` forces the generic path; `=lean`
+    insists on the lean one (a UserError says why a model cannot take it); unset or
+    `auto` chooses. `LoadedModel.runner()` picks the source.
+    """
+    from tui.errors import UserError
+    from tui.lean_llama import LeanRunner, lean_refusal
+    from tui.llama_checkpoint import LlamaCheckpoint
+
+    choice = forward_choice()
+    if isinstance(source, LlamaCheckpoint):
+        if choice == "generic":
+            raise UserError(f"{FORWARD_ENV}=generic needs a transformers model, not a checkpoint")
+        return LeanRunner(source)
     if choice == "generic":
-        return Runner(model)
-    reason = lean_refusal(model)
+        return Runner(source)
+    reason = lean_refusal(source)
     if reason is None:
-        return LeanRunner(model)
+        return LeanRunner(source)
     if choice == "lean":
         raise UserError(f"{FORWARD_ENV}=lean: {reason}; unset it to use the generic path")
-    return Runner(model)
+    return Runner(source)
 
 
 def _to_kv(cache: Any) -> KV:

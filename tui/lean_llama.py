@@ -21,14 +21,14 @@ and `models/qwen2/modeling_qwen2.py`; tests/test_forward.py holds logits to 1e-4
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import partial
 from typing import Any, Sequence
 
 import torch
 import torch.nn.functional as F
 
 from tui.forward import KV, WriteMark
-
-SUPPORTED_MODELS = {"llama": "LlamaForCausalLM", "qwen2": "Qwen2ForCausalLM"}
+from tui.llama_checkpoint import SUPPORTED_MODELS, LlamaCheckpoint, LlamaShape
 STATIC_ROPE = ("default", "linear", "llama3")  # inv_freq fixed at load; dynamic/longrope/yarn refused
 CACHE_BUCKET = 256  # cache capacity grows in steps of this many positions
 K_CHUNK = 288  # oneDNN matmuls sum at most this many input columns in one chain...
@@ -58,6 +58,25 @@ def lean_refusal(model: Any) -> str | None:
     return None
 
 
+def shape_of_model(model: Any) -> LlamaShape:
+    """The lean path's numbers, read from a loaded model (its own rotary frequencies)."""
+    cfg, body = model.config, model.model
+    heads = cfg.num_attention_heads
+    rotary = body.rotary_emb  # transformers' own inv_freq, so rope scaling matches it
+    return LlamaShape(
+        layers=len(body.layers), heads=heads, kv_heads=cfg.num_key_value_heads,
+        head_dim=getattr(cfg, "head_dim", None) or cfg.hidden_size // heads,
+        hidden=cfg.hidden_size, eps=float(body.norm.variance_epsilon),
+        inv_freq=rotary.inv_freq.detach().float(), rope_scale=float(rotary.attention_scaling),
+        max_positions=int(getattr(cfg, "max_position_embeddings", 4096) or 4096),
+    )
+
+
+def _rebind_parameter(model: Any, name: str, view: torch.Tensor) -> None:
+    """Point the model's parameter `name` at `view` (a view of a fused weight)."""
+    model.get_parameter(name).data = view
+
+
 class PackedLinear:
     """Linears that read the same input, as one: y = x [W1; W2; ...]^T + [b1; b2; ...] (+ residual).
 
@@ -65,29 +84,34 @@ class PackedLinear:
     `k_chunk` input columns whose partial sums are then added: oneDNN adds up a whole
     row in one fp32 chain, and shorter chains keep its logits within 1e-4 of
     transformers' (measured by `make bench`). Blocks of tokens (prefill, whole-sequence
-    logits) run the model's own weights with F.linear, the kernels transformers uses.
-    Unpacked (no oneDNN), the model's weights become views of the fused one: no extra memory.
+    logits) run the original weights with F.linear, the kernels transformers uses.
+    Unpacked (no oneDNN), one fused copy serves every call and the parts become views of
+    it; the owner of the original weights swaps them for `views()` (no extra memory).
     """
 
-    def __init__(self, linears: Sequence[Any], packed: bool, k_chunk: int | None = None) -> None:
-        weights = [lin.weight.detach() for lin in linears]
-        self.parts = tuple((w, lin.bias) for w, lin in zip(weights, linears))  # shared with the model
-        self.bias = _cat_bias(linears)
+    def __init__(self, parts: Sequence[tuple[torch.Tensor, torch.Tensor | None]], packed: bool,
+                 k_chunk: int | None = None) -> None:
+        self.parts = tuple(parts)  # (weight (out, in), bias (out,) or None), shared with the owner
+        self.bias = _cat_bias(self.parts)
         self.packed = packed
+        weights = [w for w, _ in self.parts]
         fused = weights[0] if len(weights) == 1 else torch.cat(weights)  # (sum out, in)
         k = fused.shape[1]
         n = 1 if not k_chunk else -(-k // k_chunk)  # equal chunks, none longer than k_chunk
         size = -(-k // n)
         self.bounds = tuple((a, min(a + size, k)) for a in range(0, k, size))
-        if packed:
+        if packed:  # the packed chunks and the parts cover every use; `fused` is dropped
             self.chunks = tuple(torch.ops.mkldnn._reorder_linear_weight(fused[:, a:b].contiguous())
                                 for a, b in self.bounds)
         else:
             self.weight = fused
-            at = 0
-            for lin, w in zip(linears, weights):  # the model now reads views of `fused`
-                lin.weight.data = fused[at:at + w.shape[0]]
-                at += w.shape[0]
+            self.parts = tuple((view, b) for view, (_, b) in zip(self.views(), self.parts))
+
+    def views(self) -> tuple[torch.Tensor, ...]:
+        """Unpacked: each part's weight as a view of the fused one, in order."""
+        rows = [w.shape[0] for w, _ in self.parts]
+        starts = [sum(rows[:i]) for i in range(len(rows))]
+        return tuple(self.weight[a:a + r] for a, r in zip(starts, rows))
 
     def __call__(self, x: torch.Tensor, residual: torch.Tensor | None = None,
                  decode: bool = True) -> torch.Tensor:
@@ -119,12 +143,11 @@ class PackedLinear:
         return x.view(x.shape[0], n, k // n).transpose(0, 1).contiguous()  # (n, N, k/n)
 
 
-def _cat_bias(linears: Sequence[Any]) -> torch.Tensor | None:
+def _cat_bias(parts: Sequence[tuple[torch.Tensor, torch.Tensor | None]]) -> torch.Tensor | None:
     """The fused bias (zeros where a part has none), or None when no part has one."""
-    if all(lin.bias is None for lin in linears):
+    if all(b is None for _, b in parts):
         return None
-    return torch.cat([lin.bias.detach() if lin.bias is not None
-                      else torch.zeros(lin.weight.shape[0], dtype=lin.weight.dtype) for lin in linears])
+    return torch.cat([b if b is not None else torch.zeros(w.shape[0], dtype=w.dtype) for w, b in parts])
 
 
 def onednn_works(dtype: torch.dtype) -> bool:
@@ -154,52 +177,65 @@ class LayerWeights:
 
 
 class LeanRunner:
-    """The engine's Runner interface (prefill/extend/step/logits_of) on the lean path."""
+    """The engine's Runner interface (prefill/extend/step/logits_of) on the lean path.
+
+    Built from a loaded transformers model, or from a `LlamaCheckpoint` read straight
+    from its files (no transformers model at all); both give the same weights and shape.
+    """
 
     kind = "lean"
 
-    def __init__(self, model: Any, packed: bool | None = None, chunked: bool | None = None) -> None:
-        """`packed`: use oneDNN (None: when it works here); `chunked`: split its sums
+    def __init__(self, source: Any, packed: bool | None = None, chunked: bool | None = None) -> None:
+        """`source`: a llama-family transformers model or a `LlamaCheckpoint`.
+        `packed`: use oneDNN (None: when it works here); `chunked`: split its sums
         (K_CHUNK; None: in float32 only, as each partial sum would be rounded to bfloat16)."""
-        reason = lean_refusal(model)
-        if reason is not None:
-            raise ValueError(f"lean path: {reason}")
-        cfg = model.config
-        self.model = model
-        self.config = cfg
-        body = model.model
-        self.dtype = body.embed_tokens.weight.dtype
+        if isinstance(source, LlamaCheckpoint):
+            shape, tensors = source.shape, source.tensors
+            rebind = tensors.__setitem__  # unpacked: the checkpoint keeps views of the fused weights
+        else:
+            reason = lean_refusal(source)
+            if reason is not None:
+                raise ValueError(f"lean path: {reason}")
+            shape, tensors = shape_of_model(source), dict(source.state_dict())
+            rebind = partial(_rebind_parameter, source)  # unpacked: the model reads the fused weights
+        self.dtype = tensors["model.embed_tokens.weight"].dtype
         self.packed = onednn_works(self.dtype) if packed is None else packed
         chunked = self.dtype == torch.float32 if chunked is None else chunked
         self.k_chunk = K_CHUNK if chunked else None
-        self.n_heads = cfg.num_attention_heads
-        self.n_kv = cfg.num_key_value_heads
-        self.head_dim = getattr(cfg, "head_dim", None) or cfg.hidden_size // self.n_heads
-        self.hidden = cfg.hidden_size
+        self.n_heads, self.n_kv, self.head_dim = shape.heads, shape.kv_heads, shape.head_dim
+        self.hidden = shape.hidden
         self.scale = self.head_dim ** -0.5
-        self.eps = float(body.norm.variance_epsilon)
-        self.embed = body.embed_tokens.weight.detach()  # (V, E)
-        self.layers = tuple(self._layer(layer) for layer in body.layers)
-        self.final_norm = body.norm.weight.detach()
-        head = model.get_output_embeddings()
-        self.lm_head = PackedLinear([head], self.packed, HEAD_K_CHUNK if chunked else None)  # E -> V
-        self.vocab_size = int(head.weight.shape[0])
-        rotary = body.rotary_emb  # transformers' own inv_freq, so rope scaling matches it
-        self.inv_freq = rotary.inv_freq.detach().float()  # (D/2,)
-        self.rope_scale = float(rotary.attention_scaling)
+        self.eps = shape.eps
+        self.embed = tensors["model.embed_tokens.weight"]  # (V, E)
+        self._rebind = rebind
+        self.layers = tuple(self._layer(tensors, f"model.layers.{i}.") for i in range(shape.layers))
+        self.final_norm = tensors["model.norm.weight"]
+        head = tensors["lm_head.weight"]
+        self.lm_head = PackedLinear([(head, None)], self.packed, HEAD_K_CHUNK if chunked else None)  # E -> V
+        self.vocab_size = int(head.shape[0])
+        self.inv_freq = shape.inv_freq  # (D/2,) float32, transformers' own values
+        self.rope_scale = shape.rope_scale
         self.cos = self.sin = torch.empty(0, self.head_dim, dtype=self.dtype)
-        self._rope_tables(min(int(getattr(cfg, "max_position_embeddings", 4096) or 4096), 4096))
+        self._rope_tables(min(shape.max_positions, 4096))
 
-    def _layer(self, layer: Any) -> LayerWeights:
-        att, mlp = layer.self_attn, layer.mlp
+    def _layer(self, tensors: dict[str, torch.Tensor], p: str) -> LayerWeights:
         return LayerWeights(
-            attn_norm=layer.input_layernorm.weight.detach(),
-            qkv=PackedLinear([att.q_proj, att.k_proj, att.v_proj], self.packed, self.k_chunk),
-            out=PackedLinear([att.o_proj], self.packed, self.k_chunk),
-            mlp_norm=layer.post_attention_layernorm.weight.detach(),
-            gate_up=PackedLinear([mlp.gate_proj, mlp.up_proj], self.packed, self.k_chunk),
-            down=PackedLinear([mlp.down_proj], self.packed, self.k_chunk),
+            attn_norm=tensors[p + "input_layernorm.weight"],
+            qkv=self._linear(tensors, p + "self_attn.", ("q_proj", "k_proj", "v_proj")),
+            out=self._linear(tensors, p + "self_attn.", ("o_proj",)),
+            mlp_norm=tensors[p + "post_attention_layernorm.weight"],
+            gate_up=self._linear(tensors, p + "mlp.", ("gate_proj", "up_proj")),
+            down=self._linear(tensors, p + "mlp.", ("down_proj",)),
         )
+
+    def _linear(self, tensors: dict[str, torch.Tensor], prefix: str, names: Sequence[str]) -> PackedLinear:
+        keys = [prefix + name for name in names]
+        linear = PackedLinear([(tensors[k + ".weight"], tensors.get(k + ".bias")) for k in keys],
+                              self.packed, self.k_chunk)
+        if not self.packed and len(keys) > 1:
+            for key, view in zip(keys, linear.views()):
+                self._rebind(key + ".weight", view)
+        return linear
 
     def _rope_tables(self, n: int) -> None:
         """cos and sin (n, D) as transformers computes them; sin's first half negated."""

@@ -17,13 +17,16 @@ the environment variable ``LOGITFORK_CACHE_DIR``. Heavy imports stay inside func
 from __future__ import annotations
 
 import hashlib
+import importlib.metadata
 import json
 import os
+import re
 import shutil
 import sys
 import tempfile
 import time
-from contextlib import contextmanager
+from contextlib import contextmanager, suppress
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable, Iterator, TextIO
 
@@ -36,6 +39,9 @@ CACHE_FORMAT = 1  # bump when the folder layout changes; older folders are rebui
 MARKER = "logitfork-cache.json"  # written last: a folder without it is not a cache
 WEIGHTS = "model.safetensors"
 STALE_TEMP_SECONDS = 6 * 3600  # temp folders older than this are debris of a killed run
+DIRECT = "logitfork-direct.json"  # how transformers loaded the folder: lets warm starts skip it
+DIRECT_FORMAT = 1
+_IDENTIFIER = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
 
 
 def cache_root() -> Path:
@@ -81,6 +87,54 @@ def is_ready(folder: Path) -> bool:
         and (folder / WEIGHTS).is_file()
         and (folder / "config.json").is_file()
     )
+
+
+@dataclass(frozen=True)
+class DirectRecord:
+    """Which tokenizer class transformers' `AutoTokenizer` chose for a cache folder.
+
+    Choosing it needs the model's config class, whose import is most of a warm start;
+    a load through transformers writes this record, and later loads build the tokenizer
+    class named here and read the weights without transformers' model classes
+    (`tui.llama_checkpoint`). It holds for the transformers version that wrote it.
+    """
+
+    tokenizer_module: str  # e.g. transformers.tokenization_utils_tokenizers
+    tokenizer_class: str  # e.g. TokenizersBackend
+
+
+def read_direct_record(folder: Path) -> DirectRecord | None:
+    """The folder's record if this transformers version wrote it and it names a
+    transformers class; otherwise None (the folder then loads through transformers)."""
+    try:
+        record = json.loads((folder / DIRECT).read_text(encoding="utf-8"))
+        version = importlib.metadata.version("transformers")
+    except (OSError, ValueError, importlib.metadata.PackageNotFoundError):
+        return None
+    if not isinstance(record, dict) or record.get("format") != DIRECT_FORMAT:
+        return None
+    module, name = record.get("tokenizer_module"), record.get("tokenizer_class")
+    if record.get("transformers") != version or not isinstance(module, str) or not isinstance(name, str):
+        return None
+    parts = module.split(".")
+    if parts[0] != "transformers" or not all(_IDENTIFIER.fullmatch(p) for p in parts + [name]):
+        return None  # never import a module a file names unless it is transformers' own
+    return DirectRecord(module, name)
+
+
+def write_direct_record(folder: Path, tokenizer: Any) -> None:
+    """Record `tokenizer`'s class for `folder`, atomically; a read-only cache just goes without."""
+    import transformers
+
+    record = {"format": DIRECT_FORMAT, "transformers": transformers.__version__,
+              "tokenizer_module": type(tokenizer).__module__, "tokenizer_class": type(tokenizer).__name__}
+    temp = folder / f".{DIRECT}.{os.getpid()}.tmp"
+    try:
+        temp.write_text(json.dumps(record, indent=2) + "\n", encoding="utf-8")
+        os.replace(temp, folder / DIRECT)
+    except OSError:
+        with suppress(OSError):
+            temp.unlink(missing_ok=True)
 
 
 def convert_gguf(gguf_file: Path, folder: Path, progress: Progress) -> None:

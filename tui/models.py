@@ -15,11 +15,15 @@ torch and transformers are imported inside functions, so `import tui.models` is 
 
 from __future__ import annotations
 
+import importlib
+import json
 import os
 import re
 import sys
+import threading
 import time
 from dataclasses import dataclass, field
+from pathlib import Path
 from typing import TYPE_CHECKING, Any, Callable, Sequence
 
 from tui import model_cache
@@ -39,6 +43,10 @@ from tui.model_sources import (
 if TYPE_CHECKING:
     from transformers import PreTrainedModel, PreTrainedTokenizerBase
 
+    from tui.forward import Runner
+    from tui.lean_llama import LeanRunner
+    from tui.llama_checkpoint import LlamaCheckpoint
+
 __all__ = [
     "CatalogueEntry",
     "DEFAULT_MODEL",
@@ -55,25 +63,51 @@ __all__ = [
 DEFAULT_MODEL = "smollm2-135m-instruct"
 DTYPES = ("float32", "bfloat16")
 Progress = Callable[[str, float], None]
+LOADER_ENV = "LOGITFORK_LOADER"  # auto (default: direct where it can) or transformers
+CONTEXT_KEYS = ("max_position_embeddings", "n_positions", "n_ctx", "seq_length")  # config keys, in order
 
 
 @dataclass
 class LoadedModel:
     """A loaded causal LM with its tokenizer, in eval mode.
 
-    The parameters were created under `torch.inference_mode()`: run the model under
-    inference mode or `no_grad`, and do not update its tensors in place outside it.
+    Loaded either through transformers (`model` set), or, for a conversion-cache folder
+    of a llama-family model, directly from its files (`checkpoint` set): that skips
+    importing transformers' model classes, most of a warm start. `model` then loads
+    transformers' model on first use (the generic path, the benchmark, the tests).
+    Parameters are created under `torch.inference_mode()`: run them under inference
+    mode or `no_grad`, and do not update them in place outside it.
     `timings` holds seconds per loading stage (for the benchmark).
     """
 
     name: str
     source: str
-    model: "PreTrainedModel"
     tokenizer: "PreTrainedTokenizerBase"
     eos_ids: tuple[int, ...]
     max_context: int
     dtype: str
     timings: dict[str, float] = field(default_factory=dict)
+    checkpoint: "LlamaCheckpoint | None" = None
+    loaded_model: "PreTrainedModel | None" = field(default=None, repr=False)
+    load_transformers_model: "Callable[[], PreTrainedModel] | None" = field(default=None, repr=False)
+    _lock: threading.Lock = field(default_factory=threading.Lock, repr=False)
+
+    @property
+    def model(self) -> "PreTrainedModel":
+        """transformers' model, loaded now if this model was read directly (thread-safe)."""
+        with self._lock:
+            if self.loaded_model is None:
+                assert self.load_transformers_model is not None
+                self.loaded_model = self.load_transformers_model()
+            return self.loaded_model
+
+    def runner(self) -> "Runner | LeanRunner":
+        """A fresh runner on the fastest path (`tui.forward.make_runner`)."""
+        from tui.forward import forward_choice, make_runner
+
+        if self.checkpoint is not None and forward_choice() != "generic":
+            return make_runner(self.checkpoint)
+        return make_runner(self.model)
 
     def encode_prompt(self, prompt: str | None, messages: list[dict] | None) -> list[int]:
         """Token ids for a plain-text prompt or for chat messages (give exactly one).
@@ -169,21 +203,12 @@ def load_model(
             ) from None
         timings["convert"] = time.perf_counter() - t
         report = _scaled(progress, 0.9, 1.0)
-    model, tokenizer = _load_folder(source, timings, report)
-    if dtype != "float32":
-        _cast(model, dtype)
+    loaded = _load_direct(source, dtype, timings, report) if source.kind == "gguf" else None
+    if loaded is None:
+        loaded = _load_transformers(source, dtype, timings, report)
     timings["total"] = time.perf_counter() - started
     report("ready", 1.0)
-    return LoadedModel(
-        name=source.name,
-        source=source.location,
-        model=model,
-        tokenizer=tokenizer,
-        eos_ids=_eos_ids(model, tokenizer),
-        max_context=_max_context(model.config, tokenizer),
-        dtype=dtype,
-        timings=timings,
-    )
+    return loaded
 
 
 def offline_status(entry: CatalogueEntry) -> tuple[bool, str]:
@@ -206,8 +231,104 @@ def offline_status(entry: CatalogueEntry) -> tuple[bool, str]:
     return True, f"local folder {source.folder}{pickle_note}"
 
 
-def _load_folder(source: ResolvedSource, timings: dict[str, float], report: Progress) -> tuple[Any, Any]:
-    """Tokenizer and float32 model from a save_pretrained-style folder, under inference mode."""
+def _load_transformers(source: ResolvedSource, dtype: str, timings: dict[str, float],
+                       report: Progress) -> LoadedModel:
+    """Load through transformers' Auto classes; for a cache folder, record how (`DirectRecord`)."""
+    model, tokenizer = _load_folder(source, timings, report)
+    if dtype != "float32":
+        _cast(model, dtype)
+    if source.kind == "gguf":
+        model_cache.write_direct_record(source.folder, tokenizer)
+    config = model.config
+    return LoadedModel(
+        name=source.name, source=source.location, tokenizer=tokenizer,
+        eos_ids=_eos_ids([getattr(config, "eos_token_id", None),
+                          getattr(getattr(model, "generation_config", None), "eos_token_id", None)],
+                         tokenizer, int(getattr(config, "vocab_size", 0) or 0)),
+        max_context=_max_context({key: getattr(config, key, None) for key in CONTEXT_KEYS}, tokenizer),
+        dtype=dtype, timings=timings, loaded_model=model,
+    )
+
+
+def _load_direct(source: ResolvedSource, dtype: str, timings: dict[str, float],
+                 report: Progress) -> LoadedModel | None:
+    """Read a cache folder without transformers' model classes, or None when it cannot be.
+
+    Needs a `DirectRecord` from this transformers version and a checkpoint that
+    `tui.llama_checkpoint` reads exactly; anything else falls back to transformers,
+    which then gives the real error, if any. `LOGITFORK_LOADER=transformers` (or
+    `LOGITFORK_FORWARD=generic`) always takes transformers' way.
+    """
+    loader = os.environ.get(LOADER_ENV, "auto").strip().lower() or "auto"
+    if loader not in ("auto", "transformers"):
+        raise UserError(f"{LOADER_ENV}: must be auto or transformers, got {loader!r}")
+    record = model_cache.read_direct_record(source.folder)
+    if record is None or loader == "transformers":
+        return None
+    t = time.perf_counter()
+    report("importing torch", 0.0)
+    import torch
+
+    from tui.forward import forward_choice
+    from tui.llama_checkpoint import read_checkpoint
+
+    timings["import torch"] = time.perf_counter() - t
+    if forward_choice() == "generic":
+        return None
+    t = time.perf_counter()
+    report("reading the weights", 0.3)
+    try:
+        with torch.inference_mode():
+            checkpoint = read_checkpoint(source.folder)
+    except (ValueError, OSError):  # not a checkpoint read exactly: transformers reads it
+        return None
+    if dtype != "float32":
+        checkpoint.cast(getattr(torch, dtype))
+    timings["weights"] = time.perf_counter() - t
+    t = time.perf_counter()
+    report("loading the tokenizer", 0.6)
+    try:
+        tokenizer_class = getattr(importlib.import_module(record.tokenizer_module), record.tokenizer_class)
+        with model_cache.quiet_transformers():
+            tokenizer = tokenizer_class.from_pretrained(str(source.folder), local_files_only=True,
+                                                        trust_remote_code=False)
+    except Exception:  # a changed or damaged folder: transformers' loader says what is wrong
+        return None
+    timings["tokenizer"] = time.perf_counter() - t
+    config = checkpoint.config
+    generation = _read_json(source.folder / "generation_config.json")
+    return LoadedModel(
+        name=source.name, source=source.location, tokenizer=tokenizer,
+        eos_ids=_eos_ids([config.get("eos_token_id"),
+                          generation.get("eos_token_id", config.get("eos_token_id"))],
+                         tokenizer, int(config["vocab_size"])),
+        max_context=_max_context(config, tokenizer), dtype=dtype, timings=timings,
+        checkpoint=checkpoint,
+        load_transformers_model=lambda: _load_model_only(source, dtype),
+    )
+
+
+def _load_model_only(source: ResolvedSource, dtype: str) -> "PreTrainedModel":
+    """transformers' model for a folder that was first read directly (its tokenizer is loaded)."""
+    model, _ = _load_folder(source, {}, lambda stage, fraction: None, tokenizer=False)
+    if dtype != "float32":
+        _cast(model, dtype)
+    return model
+
+
+def _read_json(path: Path) -> dict[str, Any]:
+    """A JSON object from `path`, or {} if it is missing or not an object."""
+    try:
+        value = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return {}
+    return value if isinstance(value, dict) else {}
+
+
+def _load_folder(source: ResolvedSource, timings: dict[str, float], report: Progress,
+                 tokenizer: bool = True) -> tuple[Any, Any]:
+    """Float32 model and tokenizer (None unless `tokenizer`) from a save_pretrained-style
+    folder, under inference mode."""
     folder = str(source.folder)
     common = {"local_files_only": True, "trust_remote_code": False}
     t = time.perf_counter()
@@ -228,7 +349,7 @@ def _load_folder(source: ResolvedSource, timings: dict[str, float], report: Prog
             timings["import model code"] = time.perf_counter() - t
             t = time.perf_counter()
             report("loading the tokenizer", 0.6)
-            tokenizer = AutoTokenizer.from_pretrained(folder, **common)
+            loaded_tokenizer = AutoTokenizer.from_pretrained(folder, **common) if tokenizer else None
             timings["tokenizer"] = time.perf_counter() - t
             t = time.perf_counter()
             report("loading the weights", 0.7)
@@ -250,7 +371,7 @@ def _load_folder(source: ResolvedSource, timings: dict[str, float], report: Prog
                 f"model {source.name}: cannot load {source.location}: {_first_line(exc)}; "
                 "check that it is a complete save_pretrained folder (config.json, weights, tokenizer files)"
             ) from None
-    return model, tokenizer
+    return model, loaded_tokenizer
 
 
 def _causal_lm_class(source: ResolvedSource, config: Any) -> Any:
@@ -274,29 +395,25 @@ def _cast(model: Any, dtype: str) -> None:
         model.to(getattr(torch, dtype))
 
 
-def _eos_ids(model: Any, tokenizer: Any) -> tuple[int, ...]:
-    """End-of-text ids from the config, the generation config and the tokenizer, deduplicated.
+def _eos_ids(named: Sequence[Any], tokenizer: Any, vocab: int) -> tuple[int, ...]:
+    """End-of-text ids: those `named` (the config's, then the generation config's), then the
+    tokenizer's, deduplicated and within the vocabulary (`vocab`, 0: the tokenizer's size).
 
     Empty if none names one (a pane then stops only on length, stop strings or context).
     """
     found: list[int] = []
-    candidates = [
-        getattr(model.config, "eos_token_id", None),
-        getattr(getattr(model, "generation_config", None), "eos_token_id", None),
-        tokenizer.eos_token_id,
-    ]
-    vocab = int(getattr(model.config, "vocab_size", 0) or 0) or len(tokenizer)
-    for value in candidates:
+    vocab = vocab or len(tokenizer)
+    for value in [*named, tokenizer.eos_token_id]:
         for token_id in value if isinstance(value, (list, tuple)) else [value]:
             if isinstance(token_id, int) and 0 <= token_id < vocab and token_id not in found:
                 found.append(token_id)
     return tuple(found)
 
 
-def _max_context(config: Any, tokenizer: Any) -> int:
+def _max_context(config: dict[str, Any], tokenizer: Any) -> int:
     """The longest sequence the model takes: its position limit, else the tokenizer's."""
-    for key in ("max_position_embeddings", "n_positions", "n_ctx", "seq_length"):
-        value = getattr(config, key, None)
+    for key in CONTEXT_KEYS:
+        value = config.get(key)
         if isinstance(value, int) and value > 0:
             return value
     limit = getattr(tokenizer, "model_max_length", None)

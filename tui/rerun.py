@@ -68,14 +68,13 @@ def _changes(pane: PaneHeader) -> dict[int, str]:
 def build_engine(head: TranscriptHeader, lm: "LoadedModel") -> tuple["Engine", dict[int, int]]:
     """An engine holding the panes that decode from the prompt; header id -> engine id."""
     from tui.engine import Engine, EngineError
-    from tui.forward import make_runner
 
     starters = [p for p in head.panes if p.origin is None]
     if not starters:
         raise UserError("the header has no pane that starts from the prompt")
     specs = [PaneSpec(p.name, recipe_at_start(p), p.seed) for p in starters]
     try:
-        engine = Engine(make_runner(lm.model), lm.decode, head.prompt_ids, specs, seed=head.seed,
+        engine = Engine(lm.runner(), lm.decode, head.prompt_ids, specs, seed=head.seed,
                         shared_draws=head.draw_log[0][1] if head.draw_log else head.shared_draws,
                         max_new_tokens=head.max_new_tokens,
                         stop_strings=head.stop, eos_ids=lm.eos_ids, max_context=lm.max_context)

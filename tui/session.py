@@ -11,7 +11,6 @@ from typing import TYPE_CHECKING
 
 from tui.decoding.allocator import retain_freed_memory
 from tui.engine import Engine
-from tui.forward import make_runner
 from tui.scenario import Scenario
 
 if TYPE_CHECKING:
@@ -34,7 +33,7 @@ def open_session(lm: "LoadedModel", scenario: Scenario, *, seed: int | None = No
     retain_freed_memory()  # per-step (V,) vectors then reuse pages instead of faulting
     prompt_ids = lm.encode_prompt(scenario.prompt, scenario.message_dicts)
     engine = Engine(
-        make_runner(lm.model), lm.decode, prompt_ids, scenario.panes,
+        lm.runner(), lm.decode, prompt_ids, scenario.panes,
         seed=scenario.seed if seed is None else seed,
         shared_draws=scenario.shared_draws,
         max_new_tokens=max_new_tokens or scenario.max_new_tokens,

@@ -35,7 +35,7 @@ StepHook = Callable[[int, int], None]  # (rows that emitted a token, rows that e
 
 
 class ForwardRunner(Protocol):
-    """What the sweep needs of a forward path (`tui.forward.make_runner` gives one)."""
+    """What the sweep needs of a forward path (`LoadedModel.runner()` gives one)."""
 
     def prefill(self, ids: Sequence[Sequence[int]]) -> tuple[KV, torch.Tensor]: ...
 

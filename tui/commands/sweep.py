@@ -45,14 +45,13 @@ def main(args: argparse.Namespace) -> int:
     out = Path(args.out) if args.out else default_folder(spec, shard)
     SweepFolder.check_existing(out, manifest)  # refuse a wrong folder before loading anything
 
-    from tui.forward import make_runner
     from tui.models import load_model
     from tui.sweep_progress import SweepProgress
     from tui.sweep_runner import SweepRunner
 
     lm = load_model(spec.model, allow_pickle=args.allow_pickle)
     job = build_job(spec, prompts, lm)
-    runner = make_runner(lm.model)
+    runner = lm.runner()
     versions = {**package_versions(), "model": {"name": lm.name, "source": lm.source,
                                                 "dtype": lm.dtype},
                 "forward": type(runner).__name__}
