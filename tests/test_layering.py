@@ -16,7 +16,7 @@ CORE_MODULES = [
     "tui.recovery", "tui.recovery_reader", "tui.report", "tui.report_html", "tui.report_md",
     "tui.rerun", "tui.token_style", "tui.bootstrap", "tui.sweep_runner", "tui.lean_llama",
     "tui.model_cache", "tui.model_sources", "tui.sweep_folder", "tui.sweep_plan",
-    "tui.sweep_results", "tui.sweep_progress",
+    "tui.sweep_results", "tui.sweep_progress", "tui.llama_checkpoint",
 ]
 
 

@@ -415,6 +415,17 @@ def test_a_cache_the_direct_reader_refuses_still_loads_through_transformers(tiny
     assert lm.checkpoint is None and lm.model.config.hidden_act == "gelu"
 
 
+def test_a_bad_loader_setting_is_one_clear_error(tiny_gguf, monkeypatch):
+    from tui.models import LOADER_ENV
+
+    load_model(str(tiny_gguf))
+    monkeypatch.setenv(LOADER_ENV, "fast")
+    with pytest.raises(UserError, match="LOGITFORK_LOADER: must be auto or transformers, got 'fast'"):
+        load_model(str(tiny_gguf))
+    monkeypatch.setenv(LOADER_ENV, "transformers")
+    assert load_model(str(tiny_gguf)).checkpoint is None
+
+
 def test_the_generic_path_and_bfloat16_are_honoured_on_warm_starts(tiny_gguf, monkeypatch):
     from tui.forward import FORWARD_ENV, Runner
     from tui.lean_llama import LeanRunner

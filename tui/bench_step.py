@@ -9,7 +9,6 @@ from __future__ import annotations
 import statistics
 import time
 from dataclasses import dataclass
-from types import SimpleNamespace
 from typing import Any, Callable, Sequence
 
 import torch
@@ -158,9 +157,9 @@ def matmul_rows(model: Any, rounds: int) -> list[Row]:
             "8 vocabulary chunks": lambda x: torch.cat([F.linear(x, c) for c in blocks], dim=1),
         }
         if onednn_works(w.dtype):
-            one = SimpleNamespace(weight=w, bias=None)
-            variants["oneDNN packed"] = PackedLinear([one], packed=True)
-            variants[f"oneDNN, sums in {k_chunk}-column chunks"] = PackedLinear([one], packed=True, k_chunk=k_chunk)
+            variants["oneDNN packed"] = PackedLinear([(w, None)], packed=True)
+            variants[f"oneDNN, sums in {k_chunk}-column chunks"] = PackedLinear([(w, None)], packed=True,
+                                                                                k_chunk=k_chunk)
         reps = 1 if w.shape[0] > 10_000 else 30
         for b in (1, 4):
             x = torch.randn(b, w.shape[1], dtype=w.dtype, generator=torch.Generator().manual_seed(b))

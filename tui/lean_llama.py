@@ -22,13 +22,14 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 from functools import partial
-from typing import Any, Sequence
+from typing import Any, Callable, Sequence
 
 import torch
 import torch.nn.functional as F
 
 from tui.forward import KV, WriteMark
 from tui.llama_checkpoint import SUPPORTED_MODELS, LlamaCheckpoint, LlamaShape
+
 STATIC_ROPE = ("default", "linear", "llama3")  # inv_freq fixed at load; dynamic/longrope/yarn refused
 CACHE_BUCKET = 256  # cache capacity grows in steps of this many positions
 K_CHUNK = 288  # oneDNN matmuls sum at most this many input columns in one chain...
@@ -70,6 +71,9 @@ def shape_of_model(model: Any) -> LlamaShape:
         inv_freq=rotary.inv_freq.detach().float(), rope_scale=float(rotary.attention_scaling),
         max_positions=int(getattr(cfg, "max_position_embeddings", 4096) or 4096),
     )
+
+
+Rebind = Callable[[str, torch.Tensor], None]  # (state-dict name, the view to use instead)
 
 
 def _rebind_parameter(model: Any, name: str, view: torch.Tensor) -> None:
@@ -207,8 +211,7 @@ class LeanRunner:
         self.scale = self.head_dim ** -0.5
         self.eps = shape.eps
         self.embed = tensors["model.embed_tokens.weight"]  # (V, E)
-        self._rebind = rebind
-        self.layers = tuple(self._layer(tensors, f"model.layers.{i}.") for i in range(shape.layers))
+        self.layers = tuple(self._layer(tensors, f"model.layers.{i}.", rebind) for i in range(shape.layers))
         self.final_norm = tensors["model.norm.weight"]
         head = tensors["lm_head.weight"]
         self.lm_head = PackedLinear([(head, None)], self.packed, HEAD_K_CHUNK if chunked else None)  # E -> V
@@ -218,24 +221,24 @@ class LeanRunner:
         self.cos = self.sin = torch.empty(0, self.head_dim, dtype=self.dtype)
         self._rope_tables(min(shape.max_positions, 4096))
 
-    def _layer(self, tensors: dict[str, torch.Tensor], p: str) -> LayerWeights:
+    def _layer(self, tensors: dict[str, torch.Tensor], p: str, rebind: Rebind) -> LayerWeights:
+        def linear(names: Sequence[str]) -> PackedLinear:
+            keys = [p + name for name in names]
+            fused = PackedLinear([(tensors[k + ".weight"], tensors.get(k + ".bias")) for k in keys],
+                                 self.packed, self.k_chunk)
+            if not self.packed and len(keys) > 1:  # the owner drops its copies for views
+                for key, view in zip(keys, fused.views()):
+                    rebind(key + ".weight", view)
+            return fused
+
         return LayerWeights(
             attn_norm=tensors[p + "input_layernorm.weight"],
-            qkv=self._linear(tensors, p + "self_attn.", ("q_proj", "k_proj", "v_proj")),
-            out=self._linear(tensors, p + "self_attn.", ("o_proj",)),
+            qkv=linear(("self_attn.q_proj", "self_attn.k_proj", "self_attn.v_proj")),
+            out=linear(("self_attn.o_proj",)),
             mlp_norm=tensors[p + "post_attention_layernorm.weight"],
-            gate_up=self._linear(tensors, p + "mlp.", ("gate_proj", "up_proj")),
-            down=self._linear(tensors, p + "mlp.", ("down_proj",)),
+            gate_up=linear(("mlp.gate_proj", "mlp.up_proj")),
+            down=linear(("mlp.down_proj",)),
         )
-
-    def _linear(self, tensors: dict[str, torch.Tensor], prefix: str, names: Sequence[str]) -> PackedLinear:
-        keys = [prefix + name for name in names]
-        linear = PackedLinear([(tensors[k + ".weight"], tensors.get(k + ".bias")) for k in keys],
-                              self.packed, self.k_chunk)
-        if not self.packed and len(keys) > 1:
-            for key, view in zip(keys, linear.views()):
-                self._rebind(key + ".weight", view)
-        return linear
 
     def _rope_tables(self, n: int) -> None:
         """cos and sin (n, D) as transformers computes them; sin's first half negated."""

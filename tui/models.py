@@ -176,6 +176,7 @@ def load_model(
     """
     if dtype not in DTYPES:
         raise UserError(f"dtype: must be one of {', '.join(DTYPES)}, got {dtype!r}")
+    loader = _loader_choice()
     os.environ.setdefault("HF_HUB_OFFLINE", "1")  # never reach for the network
     timings: dict[str, float] = {}
     started = time.perf_counter()
@@ -203,7 +204,8 @@ def load_model(
             ) from None
         timings["convert"] = time.perf_counter() - t
         report = _scaled(progress, 0.9, 1.0)
-    loaded = _load_direct(source, dtype, timings, report) if source.kind == "gguf" else None
+    direct = loader == "auto" and source.kind == "gguf"
+    loaded = _load_direct(source, dtype, timings, report) if direct else None
     if loaded is None:
         loaded = _load_transformers(source, dtype, timings, report)
     timings["total"] = time.perf_counter() - started
@@ -259,11 +261,8 @@ def _load_direct(source: ResolvedSource, dtype: str, timings: dict[str, float],
     which then gives the real error, if any. `LOGITFORK_LOADER=transformers` (or
     `LOGITFORK_FORWARD=generic`) always takes transformers' way.
     """
-    loader = os.environ.get(LOADER_ENV, "auto").strip().lower() or "auto"
-    if loader not in ("auto", "transformers"):
-        raise UserError(f"{LOADER_ENV}: must be auto or transformers, got {loader!r}")
     record = model_cache.read_direct_record(source.folder)
-    if record is None or loader == "transformers":
+    if record is None:
         return None
     t = time.perf_counter()
     report("importing torch", 0.0)
@@ -306,6 +305,14 @@ def _load_direct(source: ResolvedSource, dtype: str, timings: dict[str, float],
         checkpoint=checkpoint,
         load_transformers_model=lambda: _load_model_only(source, dtype),
     )
+
+
+def _loader_choice() -> str:
+    """`LOGITFORK_LOADER`: auto (unset) or transformers; UserError for anything else."""
+    loader = os.environ.get(LOADER_ENV, "auto").strip().lower() or "auto"
+    if loader not in ("auto", "transformers"):
+        raise UserError(f"{LOADER_ENV}: must be auto or transformers, got {loader!r}")
+    return loader
 
 
 def _load_model_only(source: ResolvedSource, dtype: str) -> "PreTrainedModel":

@@ -1,0 +1,46 @@
+"""`make bench` sections run end to end on a tiny model (their figures are not checked here).
+
+The benchmark only runs on the real model by hand, so a section that no longer fits the
+code it measures would go unnoticed until then. These run each model-level section once
+on a tiny random-weight llama and check the rows it reports; speed targets stay in
+`make bench`.
+"""
+
+from __future__ import annotations
+
+import torch
+
+from tui import bench_step
+from tui.bench import render
+from tui.forward import Runner
+from tui.lean_llama import LeanRunner, onednn_works
+
+try:
+    from tiny_model import tiny_llama
+except ImportError:
+    from tests.tiny_model import tiny_llama
+
+
+def test_the_matmul_section_measures_every_layout_at_one_and_four_rows():
+    model = tiny_llama()
+    rows = bench_step.matmul_rows(model, rounds=1)
+    names = [r.name for r in rows]
+    variants = 6 if onednn_works(torch.float32) else 4  # common practice, no source: oneDNN is optional
+    assert len(rows) == 2 * 2 * variants  # two weights, two row counts
+    assert any("oneDNN packed" in n for n in names) == onednn_works(torch.float32)
+    assert all(r.value.endswith(" ms") for r in rows)
+    assert "F.linear" in render(rows)
+
+
+def test_the_step_sections_cover_both_paths_and_every_pane_count():
+    model = tiny_llama()
+    runners = {"generic": Runner(model), "lean": LeanRunner(model)}
+    contexts = {n: bench_step.context_ids(list(range(1, 20)), n) for n in (10, 40)}
+    grid = bench_step.step_grid(runners, contexts, (1, 4), steps=2)
+    assert set(grid) == {(path, ctx, panes) for path in runners for ctx in (10, 40) for panes in (1, 4)}
+    rows = bench_step.step_rows(grid, (10, 40), (1, 4))
+    rows += bench_step.chunk_rows(runners["lean"], LeanRunner(model, chunked=False), contexts[10], 2)
+    rows += bench_step.prefill_rows(runners, contexts, rounds=1)
+    rows += bench_step.thread_rows(runners["lean"], contexts[10], 2)
+    assert {r.section for r in rows} >= {"prefill", "threads"}
+    assert any(r.status in ("PASS", "MISS") for r in rows)  # the 4-pane/1-pane target row
