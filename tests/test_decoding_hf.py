@@ -137,7 +137,7 @@ def test_a_models_own_generation_defaults_do_not_leak_into_an_exported_recipe(ti
     model = copy.deepcopy(tiny_model)
     model.generation_config.update(top_k=5, top_p=0.5, temperature=0.1, min_p=0.3, repetition_penalty=1.3)
     for text, want in [("top_p=0.9", (1.0, 0, 0.9, 0.0)), ("temperature=1.0", (1.0, 0, 1.0, 0.0)),
-                       ("min_p=0.1 temperature=0.7", (0.7, 0, 1.0, 0.1))]:
+                       ("temperature=0.7 min_p=0.1", (0.7, 0, 1.0, 0.1))]:
         merged, _ = model._prepare_generation_config(Recipe.parse(text).to_generation_config())
         assert (merged.temperature, merged.top_k, merged.top_p, merged.min_p) == want, text
         assert merged.repetition_penalty == 1.0 and merged.do_sample is True
