@@ -17,6 +17,7 @@ CORE_MODULES = [
     "tui.rerun", "tui.token_style", "tui.bootstrap", "tui.sweep_runner", "tui.lean_llama",
     "tui.model_cache", "tui.model_sources", "tui.sweep_folder", "tui.sweep_plan",
     "tui.sweep_results", "tui.sweep_progress", "tui.llama_checkpoint",
+    "tui.model_loading", "tui.loaded_model",
 ]
 
 
