@@ -10,6 +10,9 @@ The folder is built under a temporary name in the same directory and moved into 
 with one `os.replace`, and a marker file is written last inside it, so a crash or an
 error midway never leaves a folder that a later start would take for complete.
 
+A load through transformers then adds ``logitfork-direct.json`` (`DirectRecord`): the
+tokenizer class transformers chose, so that warm starts can skip its model classes.
+
 The cache root is ``platformdirs.user_cache_dir("logitfork")``, or the folder named by
 the environment variable ``LOGITFORK_CACHE_DIR``. Heavy imports stay inside functions.
 """

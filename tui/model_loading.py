@@ -34,9 +34,9 @@ CONTEXT_KEYS = ("max_position_embeddings", "n_positions", "n_ctx", "seq_length")
 
 
 def load_transformers(source: ResolvedSource, dtype: str, timings: dict[str, float],
-                       report: Progress) -> LoadedModel:
+                      report: Progress) -> LoadedModel:
     """Load through transformers' Auto classes; for a cache folder, record how (`DirectRecord`)."""
-    model, tokenizer = load_folder(source, timings, report)
+    model, tokenizer = _load_folder(source, timings, report)
     if dtype != "float32":
         _cast(model, dtype)
     if source.kind == "gguf":
@@ -53,7 +53,7 @@ def load_transformers(source: ResolvedSource, dtype: str, timings: dict[str, flo
 
 
 def load_direct(source: ResolvedSource, dtype: str, timings: dict[str, float],
-                 report: Progress) -> LoadedModel | None:
+                report: Progress) -> LoadedModel | None:
     """Read a cache folder without transformers' model classes, or None when it cannot be.
 
     Needs a `DirectRecord` from this transformers version and a checkpoint that
@@ -117,7 +117,7 @@ def loader_choice() -> str:
 
 def _load_model_only(source: ResolvedSource, dtype: str) -> "PreTrainedModel":
     """transformers' model for a folder that was first read directly (its tokenizer is loaded)."""
-    model, _ = load_folder(source, {}, lambda stage, fraction: None, tokenizer=False)
+    model, _ = _load_folder(source, {}, lambda stage, fraction: None, tokenizer=False)
     if dtype != "float32":
         _cast(model, dtype)
     return model
@@ -132,7 +132,7 @@ def _read_json(path: Path) -> dict[str, Any]:
     return value if isinstance(value, dict) else {}
 
 
-def load_folder(source: ResolvedSource, timings: dict[str, float], report: Progress,
+def _load_folder(source: ResolvedSource, timings: dict[str, float], report: Progress,
                  tokenizer: bool = True) -> tuple[Any, Any]:
     """Float32 model and tokenizer (None unless `tokenizer`) from a save_pretrained-style
     folder, under inference mode."""
