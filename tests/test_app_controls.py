@@ -268,3 +268,11 @@ def test_grid_shapes():
     # the issue: columns for up to 4 panes, a grid for 5 to 8
     assert [grid_shape(n) for n in range(1, 9)] == [
         (1, 1), (2, 1), (3, 1), (4, 1), (3, 2), (3, 2), (4, 2), (4, 2)]
+
+
+def test_the_seed_check_takes_only_ascii_digits():
+    from tui.app.actions import check_seed
+
+    assert check_seed("0") is None and check_seed("12345") is None
+    for bad in ("", "-1", "1.5", "²", "٣"):  # superscript two and Arabic-Indic three pass str.isdigit
+        assert check_seed(bad) is not None  # int() of each would fail or give a negative seed

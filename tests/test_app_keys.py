@@ -69,6 +69,12 @@ async def test_keys_answer_while_a_step_is_under_way(lm):
                 await timed_press(app, "tab", lambda: app.focused is panes[2], "\t"),
                 await timed_press(app, "question_mark", lambda: isinstance(app.screen, HelpScreen),
                                   "?"),
+            ]
+            helped = dict(app.screen.main_keys)  # the help lists every key of the main screen
+            assert [app.get_key_display(b) in helped for b in app.BINDINGS] == [True] * len(app.BINDINGS)
+            back = next(b for b in app.BINDINGS if b.key == "shift+tab")  # not on the key bar
+            assert helped[app.get_key_display(back)] == "focus the previous pane"
+            delays += [
                 await timed_press(app, "escape", lambda: not isinstance(app.screen, HelpScreen)),
                 await timed_press(app, "home", lambda: app.cursor == 0),
             ]

@@ -127,6 +127,11 @@ def test_generation_config_for_greedy() -> None:
     assert config.temperature is None and config.top_k is None  # cannot change the argmax: left out
     with pytest.warns(RecipeWarning, match="greedy decoding skips it"):
         Recipe.parse("typical_p=0.5 greedy").to_generation_config()
+    # presence and frequency penalties can move the argmax, and GenerationConfig has no field for them
+    with pytest.warns(RecipeWarning, match=r"presence_penalty=2 \(no GenerationConfig field\); "
+                                           r"frequency_penalty=1 \(no GenerationConfig field\)"):
+        config = Recipe.parse("presence_penalty=2 frequency_penalty=1 greedy").to_generation_config()
+    assert config.do_sample is False
 
 
 def test_a_models_own_generation_defaults_do_not_leak_into_an_exported_recipe(tiny_model) -> None:

@@ -13,7 +13,7 @@ import math
 import numpy as np
 import pytest
 
-from tui.decoding import MirostatV2, Recipe, RecipeError, draw
+from tui.decoding import MirostatV2, Recipe, draw
 
 
 def zipf(size: int, exponent: float) -> np.ndarray:
@@ -71,12 +71,20 @@ def test_mean_surprise_settles_within_five_percent_of_tau(size: int, exponent: f
     assert abs(-(p * np.log2(p)).sum() - tau) > 0.5 * tau
 
 
-def test_observe_refuses_a_token_mirostat_cut() -> None:
+def test_a_forced_token_that_mirostat_cut_still_updates_mu() -> None:
+    # worked by hand: mu starts at 2 tau = 2 bits, so p = 0.125 (3 bits) is cut; forced
+    # anyway, its surprise under the distribution mirostat received updates mu:
+    # 2 - 0.1 * (3 - 1) = 1.8 (Basu et al. 2021, Alg. 1, with the emitted token)
     x = np.log([0.5, 0.25, 0.125, 0.125])
     sampler = Recipe.parse("mirostat(tau=1,eta=0.1)").sampler()
+    assert sampler.distribution(x)[3] == 0.0
+    sampler.observe(3)
+    assert sampler.states[0] == pytest.approx(1.8, rel=1e-12)
+    # a token an earlier stage had cut has no surprise to read: mu stays where it was
+    sampler = Recipe.parse("top_k=2 mirostat(tau=1,eta=0.1)").sampler()
     sampler.distribution(x)
-    with pytest.raises(RecipeError, match="had cut that token"):
-        sampler.observe(3)
+    sampler.observe(3)
+    assert sampler.states[1] == 2.0
 
 
 def test_mirostat_in_a_chain_sees_the_earlier_stages() -> None:

@@ -198,6 +198,22 @@ def test_force_rewinds_and_others_write_the_same_again(lm):
         assert p.records == q.records
 
 
+def test_a_forced_token_that_mirostat_cut_steps_on(lm):
+    # the pane writes the forced token and its mirostat state learns of it (its surprise
+    # under the distribution mirostat received); the step must not fail
+    e = make(lm, ["mirostat(tau=1,eta=0.5)"])
+    run(e, 2)
+    final = e.pane(0).sampler.distribution(e.logits_at(0, 2), e.history(0, 2))
+    cut = int(np.argmin(np.where(final > 0, np.inf, e.logits_at(0, 2))))  # least likely, cut
+    assert final[cut] == 0.0
+    mu = e.pane(0).sampler.states[0]
+    e.force(0, 2, cut)
+    run(e, 3)
+    rec = e.view().panes[0].records[2]
+    assert rec.token_id == cut and rec.forced and len(e.view().panes[0].records) == 5
+    assert e.pane(0).samplers[3][1].states[0] != mu
+
+
 def test_stop_rules(lm):
     e = make(lm, ["greedy"], max_new=4)
     run(e, 10)

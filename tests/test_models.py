@@ -443,6 +443,18 @@ def test_the_generic_path_and_bfloat16_are_honoured_on_warm_starts(tiny_gguf, mo
     assert {p.dtype for p in half.model.parameters()} == {torch.bfloat16}
 
 
+def test_a_first_conversion_on_a_terminal_draws_its_bar_to_the_end(tiny_gguf, monkeypatch):
+    class Terminal(io.StringIO):
+        def isatty(self) -> bool:
+            return True
+
+    stream = Terminal()
+    monkeypatch.setattr(sys, "stderr", stream)
+    load_model(str(tiny_gguf))
+    last = stream.getvalue().split("\r")[-1]
+    assert "100%" in last and last.endswith("\n")  # the bar closes its line
+
+
 def test_the_text_progress_bar_draws_in_place():
     stream = io.StringIO()
     bar = model_cache.TextProgressBar("converting x", stream=stream, width=10)

@@ -210,3 +210,19 @@ def test_fingerprint_follows_what_changes_the_tokens():
         assert parse(change).fingerprint() != spec.fingerprint(), change
     assert parse_sweep_text(BASE.replace("2", "3") + 'recipes = ["greedy"]\n',
                             PATH).fingerprint() != spec.fingerprint()
+
+
+@pytest.mark.parametrize("name, make, reason", [
+    ("bad.toml", lambda p: p.mkdir(), "is a folder, not a sweep file"),
+    ("bad.toml", lambda p: p.write_bytes(b"title = \"\xff\"\n"), "not UTF-8 text"),
+    ("plain/bad.toml", lambda p: p.parent.write_text("a file, not a folder"), "cannot be read"),
+])
+def test_an_unreadable_sweep_or_scenario_file_is_one_line(tmp_path, name, make, reason):
+    from tui.scenario import load_scenario
+
+    path = tmp_path / name
+    make(path)
+    with pytest.raises(UserError, match=f"bad\\.toml: {reason}"):
+        load_sweep(path)
+    with pytest.raises(UserError, match=f"bad\\.toml: {reason.replace('sweep', 'scenario')}"):
+        load_scenario(path)

@@ -40,7 +40,8 @@ class FakeSession:
     """The engine's bookkeeping without a model: records per pane, rewinds, forks."""
 
     def __init__(self) -> None:
-        self.seed, self.shared, self.next_id, self.tick = 5, True, 0, 0
+        self.seed, self.next_id, self.tick = 5, 0, 0
+        self.draws = [(0, True)]  # (from step, shared draws), as the engine's draw log
         self.panes: list[dict] = []
         for _ in range(2):
             self.add(None, [])
@@ -59,7 +60,7 @@ class FakeSession:
                                p["records"][-1].stop if p["records"] else None,
                                tuple(p["log"]), p["origin"]) for p in self.panes)
         return SessionView(max((len(p["records"]) for p in self.panes), default=0), self.seed,
-                           self.shared, panes)
+                           self.draws[-1][1], panes, tuple(self.draws))
 
     def step(self, stop_pane: int | None) -> list:
         out = []
@@ -78,6 +79,11 @@ class FakeSession:
         for p in self.panes:
             del p["records"][t:]
             p["log"] = sorted({min(s, t): r for s, r in p["log"]}.items())
+        self.draws = sorted({min(s, t): b for s, b in self.draws}.items())
+
+    def toggle_draws(self) -> None:
+        step = self.view().step
+        self.draws = [e for e in self.draws if e[0] < step] + [(step, not self.draws[-1][1])]
 
     def fork(self, index: int) -> int | None:
         src = self.panes[index % len(self.panes)]
@@ -101,6 +107,7 @@ OPS = st.lists(st.one_of(
     st.tuples(st.just("recipe"), st.integers(0, 7)),
     st.tuples(st.just("remove"), st.integers(0, 7)),
     st.tuples(st.just("restart"), st.integers(0, 99)),
+    st.tuples(st.just("draws"), st.just(0)),
 ), max_size=40)
 
 
@@ -117,6 +124,7 @@ def _drive(log: RecoveryLog, ops, api: str) -> FakeSession:
             s.rewind(t)
             if api == "calls":
                 log.event("rewind", step=t)
+                log.event("session", seed=s.seed, shared_draws=s.draws[-1][1], draw_log=s.draws)
         elif op == "fork":
             pid = s.fork(arg)
             if pid is not None and api == "calls":
@@ -131,10 +139,14 @@ def _drive(log: RecoveryLog, ops, api: str) -> FakeSession:
                 log.event("remove_pane", pane=gone["id"])
         elif op == "restart":
             s.rewind(0)
-            s.seed = arg
+            s.seed, s.draws = arg, [(0, s.draws[-1][1])]
             if api == "calls":
                 log.event("rewind", step=0)
-                log.event("session", seed=arg, shared_draws=True)
+                log.event("session", seed=arg, shared_draws=s.draws[-1][1], draw_log=s.draws)
+        elif op == "draws":
+            s.toggle_draws()
+            if api == "calls":
+                log.event("session", seed=s.seed, shared_draws=s.draws[-1][1], draw_log=s.draws)
         if api == "sync":
             log.sync(s.view())
     return s
@@ -146,6 +158,8 @@ def _assert_same(recovered, view: SessionView) -> None:
     for p in view.panes:
         assert recovered.records[p.id] == p.records
     assert recovered.header.seed == view.seed
+    assert recovered.header.shared_draws == view.shared_draws
+    assert recovered.header.draw_log == (view.draw_log if len(view.draw_log) > 1 else ())
 
 
 @settings(max_examples=60, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
@@ -236,7 +250,7 @@ def test_a_transcript_is_refused_by_recover_and_a_log_by_report(tmp_path, monkey
 
     sample = write_sample(tmp_path / "t.jsonl")
     assert run_cli(["recover", str(sample), "--out", str(tmp_path / "o.jsonl")], monkeypatch) == 2
-    assert "not a logitfork file" in capsys.readouterr().err
+    assert "this is a transcript, not a recovery log" in capsys.readouterr().err
     log = RecoveryLog(tmp_path / "l.jsonl")
     log.begin(FakeSession().view(), INFO, [1])
     log.close()

@@ -7,6 +7,8 @@ never with a traceback.
 
 from __future__ import annotations
 
+from pathlib import Path
+
 
 class UserError(Exception):
     """A mistake in the user's input, told in one line.
@@ -23,3 +25,22 @@ class UserError(Exception):
 def located(path: object, field: str, reason: str) -> UserError:
     """`UserError` in the standard ``FILE: FIELD: reason`` form."""
     return UserError(f"{path}: {field}: {reason}")
+
+
+
+def read_text_input(path: Path, what: str) -> str:
+    """A user's UTF-8 text file, or a `UserError` saying why it cannot be read.
+
+    `what` names the expected kind of file ("scenario file", "sweep file") in the
+    message for a folder given instead.
+    """
+    try:
+        return path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise UserError(f"{path}: no such file") from None
+    except IsADirectoryError:
+        raise UserError(f"{path}: is a folder, not a {what}") from None
+    except UnicodeDecodeError as exc:
+        raise UserError(f"{path}: not UTF-8 text ({exc.reason})") from None
+    except OSError as exc:
+        raise UserError(f"{path}: cannot be read ({exc.strerror})") from None

@@ -98,7 +98,7 @@ def load_model(
                 f"nothing was cached; check the file and the free space in {source.folder.parent}"
             ) from None
         timings["convert"] = time.perf_counter() - t
-        report = _scaled(progress, 0.9, 1.0)
+        report = _scaled(bar, 0.9, 1.0)  # the bar also draws the load's last tenth
     direct = loader == "auto" and source.kind == "gguf"
     loaded = load_direct(source, dtype, timings, report) if direct else None
     if loaded is None:

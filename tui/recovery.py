@@ -20,7 +20,7 @@ the log then stops writing and `error` says why):
     log.event("rewind", step=t)              # after engine.rewind(t) / force(...)
     log.event("pane", pane=view.panes[i])    # after fork / add_pane / set_recipe / rename
     log.event("remove_pane", pane=pane_id)   # after remove_pane
-    log.event("session", seed=s, shared_draws=b)  # after restart / set_shared_draws
+    log.event("session", seed=s, shared_draws=b, draw_log=...)  # after restart / set_shared_draws
     log.sync(engine.view())                  # or instead of all the above: diff and write
     log.close(delete=True)                   # on a clean quit after a save
     log.close(delete=False)                  # on a quit without saving: keep it
@@ -88,6 +88,7 @@ class RecoveryLog:
         self._written: dict[int, list[StepRecord]] = {}  # what a reader of the file will hold
         self._seed: int | None = None
         self._shared: bool | None = None
+        self._draws: tuple[tuple[int, bool], ...] = ()  # the draw log last written
         self._closed = False
 
     # ----- the app's calls ----------------------------------------------------------
@@ -108,7 +109,7 @@ class RecoveryLog:
                 self._fail(exc)
                 return
             self._pending.append(dumps(obj))
-            self._seed, self._shared = view.seed, view.shared_draws
+            self._seed, self._shared, self._draws = view.seed, view.shared_draws, view.draw_log
             for p in head.panes:
                 self._panes[p.id] = p
                 self._written[p.id] = []
@@ -149,7 +150,8 @@ class RecoveryLog:
                 seed, shared = _nonneg_int(fields, "seed"), fields.get("shared_draws")
                 if not isinstance(shared, bool):
                     raise TypeError(f"event('session'): shared_draws must be a bool, got {shared!r}")
-                self._session(seed, shared)
+                draws = tuple((int(a), bool(b)) for a, b in fields.get("draw_log", [(0, shared)]))
+                self._session(seed, shared, draws)
             else:
                 raise ValueError(f"unknown event kind {kind!r} "
                                  "(known: rewind, pane, remove_pane, session)")
@@ -161,8 +163,8 @@ class RecoveryLog:
             if not self._usable():
                 return
             changed = False
-            if (view.seed, view.shared_draws) != (self._seed, self._shared):
-                self._session(view.seed, view.shared_draws)
+            if (view.seed, view.shared_draws, view.draw_log) != (self._seed, self._shared, self._draws):
+                self._session(view.seed, view.shared_draws, view.draw_log)
                 changed = True
             present = {p.id for p in view.panes}
             for pid in [pid for pid in self._panes if pid not in present]:
@@ -261,9 +263,10 @@ class RecoveryLog:
         self._written.pop(pane_id, None)
         self._pending.append(dumps({"kind": "remove_pane", "pane": pane_id}))
 
-    def _session(self, seed: int, shared: bool) -> None:
-        self._seed, self._shared = seed, shared
-        self._pending.append(dumps({"kind": "session", "seed": seed, "shared_draws": shared}))
+    def _session(self, seed: int, shared: bool, draws: tuple[tuple[int, bool], ...]) -> None:
+        self._seed, self._shared, self._draws = seed, shared, tuple(draws)
+        self._pending.append(dumps({"kind": "session", "seed": seed, "shared_draws": shared,
+                                    "draw_log": [list(e) for e in draws]}))
 
     def _flush(self) -> None:
         self._unflushed_steps = 0

@@ -60,7 +60,7 @@ def read_recovery(path: str | os.PathLike[str], *, warn: Warn | None = None) -> 
     head, _ = read_header_line(path, first, (RECOVERY_FORMAT,))
     panes: dict[int, PaneHeader] = {p.id: p for p in head.panes}
     records: dict[int, list[StepRecord]] = {p.id: [] for p in head.panes}
-    seed, shared = head.seed, head.shared_draws
+    seed, shared, draw_log = head.seed, head.shared_draws, head.draw_log
     for line in lines:
         kind = line.obj.get("kind")
         if kind == "step":
@@ -101,13 +101,16 @@ def read_recovery(path: str | os.PathLike[str], *, warn: Warn | None = None) -> 
             del records[ev.pane_id]
         elif ev.kind == "session":
             seed, shared = ev.seed, ev.shared_draws
+            if ev.draw_log is not None:
+                draw_log = ev.draw_log if len(ev.draw_log) > 1 else ()  # as in a transcript header
     if not panes:
         raise TranscriptError(path, 1, "the log removes every pane; nothing to recover")
     final = tuple(replace(p, stop=records[p.id][-1].stop if records[p.id] else None)
                   for p in panes.values())
     info = head.extra.get("recovery")
     pid = info.get("pid") if isinstance(info, dict) else None
-    header = replace(head, panes=final, seed=seed, shared_draws=shared)  # type: ignore[arg-type]
+    header = replace(head, panes=final, seed=seed, shared_draws=shared,  # type: ignore[arg-type]
+                     draw_log=draw_log)
     return RecoveredSession(path, header, {k: tuple(v) for k, v in records.items()},
                             pid if isinstance(pid, int) else None, tuple(warnings))
 

@@ -2,14 +2,13 @@
 
 Everything needed is in the transcript's header: the model, the prompt's token ids,
 every pane's recipe with its changes (`recipe_log`), its seed and fork origin, the
-session seed and the draw setting; forced tokens are marked on their records. The
-engine's draws are a pure function of (seed, stream, step), so the same model and
-libraries give the same tokens. The walk follows the file step by step: forks are
+session seed and the draw setting with its changes (`draw_log`); forced tokens are marked
+on their records. The engine's draws are a pure function of (seed, stream, step), so the
+same model and libraries give the same tokens. The walk follows the file step by step: forks are
 made at their step, recipe changes applied at theirs, forced tokens forced again.
 
-Limits: a pane added mid-session (no fork origin) is run from the start, which is
-what the engine's `add_pane` does too; a draw setting switched mid-session is not
-recorded in the header, so such a session re-runs with its final setting.
+A pane added mid-session (no fork origin) is run from the start, which is what the
+engine's `add_pane` does too.
 """
 
 from __future__ import annotations

@@ -23,7 +23,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from tui.errors import UserError, located
+from tui.errors import UserError, located, read_text_input
 
 MAX_PANES = 8
 MAX_NEW_TOKENS = 4096
@@ -85,12 +85,9 @@ def find_scenario(name_or_path: str | None) -> Path:
 
 def load_scenario(path: str | Path) -> Scenario:
     path = Path(path)
+    text = read_text_input(path, "scenario file")
     try:
-        data = tomllib.loads(path.read_text(encoding="utf-8"))
-    except FileNotFoundError:
-        raise UserError(f"{path}: no such file") from None
-    except UnicodeDecodeError as exc:
-        raise UserError(f"{path}: not UTF-8 text ({exc.reason})") from None
+        data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise UserError(f"{path}: not valid TOML: {exc}") from None
     return parse_scenario(data, path)

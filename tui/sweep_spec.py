@@ -42,7 +42,7 @@ from dataclasses import dataclass, field
 from pathlib import Path, PurePosixPath
 from typing import Any
 
-from tui.errors import UserError, located
+from tui.errors import UserError, located, read_text_input
 from tui.scenario import ROLES
 
 DEFAULT_MODEL = "smollm2-135m-instruct"  # the catalogue default (models.txt)
@@ -148,15 +148,7 @@ def _toml_prompt(prompt: Prompt) -> str:
 def load_sweep(path: str | Path) -> SweepSpec:
     """Read and validate a sweep file."""
     path = Path(path)
-    try:
-        text = path.read_text(encoding="utf-8")
-    except FileNotFoundError:
-        raise UserError(f"{path}: no such file") from None
-    except IsADirectoryError:
-        raise UserError(f"{path}: is a folder, not a sweep file") from None
-    except UnicodeDecodeError as exc:
-        raise UserError(f"{path}: not UTF-8 text ({exc.reason})") from None
-    return parse_sweep_text(text, path)
+    return parse_sweep_text(read_text_input(path, "sweep file"), path)
 
 
 def parse_sweep_text(text: str, path: str | Path = "<sweep>") -> SweepSpec:

@@ -115,6 +115,9 @@ def read_header_line(path: str | os.PathLike[str], line: RawLine | None,
         if line.obj.get("format") == RECOVERY_FORMAT and RECOVERY_FORMAT not in formats:
             raise TranscriptError(path, 1, "this is a recovery log, not a transcript; turn "
                                   "it into one with `logitfork recover FILE --out X.jsonl`")
+        if line.obj.get("format") == FORMAT and FORMAT not in formats:
+            raise TranscriptError(path, 1, "this is a transcript, not a recovery log; open it "
+                                  "with `logitfork replay FILE`")
         raise TranscriptError(path, 1, str(exc)) from None
 
 

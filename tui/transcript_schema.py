@@ -44,6 +44,7 @@ class Event:
     pane_id: int | None = None  # remove_pane
     seed: int | None = None  # session
     shared_draws: bool | None = None  # session
+    draw_log: tuple[tuple[int, bool], ...] | None = None  # session: the whole log; None in older logs
 
 
 def check_format(obj: dict[str, Any], formats: tuple[str, ...]) -> int:
@@ -212,7 +213,8 @@ def parse_event(obj: dict[str, Any]) -> Event:
         return Event("remove_pane", pane_id=_int(obj, "pane", low=0))
     if kind == "session":
         return Event("session", seed=_int(obj, "seed", low=0),
-                     shared_draws=_bool(obj, "shared_draws"))
+                     shared_draws=_bool(obj, "shared_draws"),
+                     draw_log=_draw_log(obj) if "draw_log" in obj else None)
     raise SchemaError(f"kind: unknown line kind {kind!r} (known: step, "
                       f"{', '.join(EVENT_KINDS)})")
 

@@ -13,6 +13,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any, Callable
 
 from textual import work
+from textual.binding import Binding
 
 from tui.app.confirm_dialog import ConfirmDialog
 from tui.app.help_screen import HelpScreen
@@ -33,7 +34,7 @@ ANYWHERE = frozenset({"run_pause"})
 
 
 def check_seed(text: str) -> str | None:
-    if not text.isdigit():
+    if not (text.isascii() and text.isdigit()):  # str.isdigit alone takes "²", which int() refuses
         return f"the seed must be a whole number >= 0, got {text!r}"
     return None
 
@@ -150,14 +151,9 @@ class SessionActions:
         if isinstance(self.screen, HelpScreen):
             return
         rows = [(self.get_key_display(b), b.tooltip or b.description)
-                for b in self._bindings_list() if b.show]
+                for b in self.BINDINGS if isinstance(b, Binding)]  # the key bar's hidden ones too
         rows.append(("escape", "close a view or dialog"))
         self.push_screen(HelpScreen(rows, self.scheme))
-
-    def _bindings_list(self: "LogitforkApp") -> list[Any]:
-        from textual.binding import Binding
-
-        return [b for b in self.BINDINGS if isinstance(b, Binding)]
 
     # ----- changing the session -------------------------------------------------------
 

@@ -52,8 +52,8 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
     BINDINGS = [
         Binding("space", "run_pause", "run/pause", tooltip="run, or pause after the step "
                 "under way"),
-        Binding("n", "one_step", "step", tooltip="one step in every pane (pauses first "
-                "when running)"),
+        Binding("n", "one_step", "step", tooltip="one step in every pane (when running: "
+                "pause after the step under way)"),
         Binding("left", "cursor(-1)", "cursor", key_display="\u2190",
                 tooltip="cursor one step back: the panes show the text up to the cursor"),
         Binding("right", "cursor(1)", "cursor", key_display="\u2192",
@@ -64,7 +64,8 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
         Binding("enter", "inspect", "inspect", key_display="\u23ce", tooltip="inspect the "
                 "focused pane at the cursor (or click a token)"),
         Binding("tab", "next_pane", "next pane", tooltip="focus the next pane"),
-        Binding("shift+tab", "next_pane(-1)", "previous pane", show=False),
+        Binding("shift+tab", "next_pane(-1)", "previous pane", show=False,
+                tooltip="focus the previous pane"),
         Binding("f", "fork", "fork", tooltip="fork the focused pane at the present step "
                 "into a new pane, with a recipe you give"),
         Binding("e", "edit", "edit", tooltip="edit the focused pane's recipe (from the "

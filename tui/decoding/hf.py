@@ -37,7 +37,7 @@ from transformers import (
 )
 
 from tui.decoding.mirostat import MirostatV2
-from tui.decoding.penalties import NoRepeatNGram, RepetitionPenalty
+from tui.decoding.penalties import FrequencyPenalty, NoRepeatNGram, PresencePenalty, RepetitionPenalty
 from tui.decoding.scaling import Greedy, Temperature
 from tui.decoding.stage import Candidates, History, Stage, StatefulStage
 from tui.decoding.truncation import Epsilon, Eta, MinP, TopK, TopP, TypicalP
@@ -151,7 +151,8 @@ LIBRARY_ORDER: dict[type[Stage], tuple[str, str]] = {
     Epsilon: ("epsilon_cutoff", "epsilon"),
     Eta: ("eta_cutoff", "epsilon"),
 }
-_PENALTIES = (RepetitionPenalty, NoRepeatNGram)
+# Stages that change logits by the history, so that they can move the argmax before greedy.
+_PENALTIES = (RepetitionPenalty, PresencePenalty, FrequencyPenalty, NoRepeatNGram)
 # Values that switch a field off, so that a model's own defaults do not leak in.
 _NEUTRAL = {"temperature": 1.0, "top_k": 0, "top_p": 1.0, "min_p": 0.0, "typical_p": 1.0,
             "epsilon_cutoff": 0.0, "eta_cutoff": 0.0}

@@ -25,7 +25,6 @@ import numpy as np
 from tui.decoding.stage import (
     Candidates,
     History,
-    RecipeError,
     StatefulStage,
     check_interval,
     format_number,
@@ -37,7 +36,7 @@ from tui.decoding.stage import (
 class SurpriseMemo:
     """What mirostat needs from one step to update mu once the token is known."""
 
-    ids: np.ndarray  # token ids it kept (ascending)
+    ids: np.ndarray  # token ids the stage received (ascending)
     probs: np.ndarray  # their probabilities under the distribution it received
 
 
@@ -66,13 +65,15 @@ class MirostatV2(StatefulStage):
         mask = probs >= 2.0 ** (-state)  # -log2 p <= mu
         if not mask.any():
             mask = keep_most_likely(cands)
-        kept = cands.keep(mask)
-        return kept, SurpriseMemo(kept.ids, probs[mask])
+        return cands.keep(mask), SurpriseMemo(cands.ids, probs)
 
     def next_state(self, state: float, memo: SurpriseMemo, token_id: int) -> float:
+        """mu after `token_id` was emitted: its surprise is read under the distribution this
+        stage received, so a forced token that mirostat cut still counts. A token an earlier
+        stage had cut has no probability there (infinite surprise): mu stays as it was."""
         at = int(np.searchsorted(memo.ids, token_id))
         if at >= memo.ids.size or memo.ids[at] != token_id:
-            raise RecipeError(f"mirostat was told token {token_id} was drawn, but it had cut that token")
+            return state
         prob = max(float(memo.probs[at]), math.ulp(0.0))  # an underflowed 0 reads as ~1074 bits
         surprise = -math.log2(prob)
         return state - self.eta * (surprise - self.tau)
