@@ -1,8 +1,8 @@
-"""`make bench` sections run end to end on a tiny model (their figures are not checked here).
+"""The step and matmul sections of `make bench` run on a tiny model (figures not checked).
 
 The benchmark only runs on the real model by hand, so a section that no longer fits the
-code it measures would go unnoticed until then. These run each model-level section once
-on a tiny random-weight llama and check the rows it reports; speed targets stay in
+code it measures would go unnoticed until then. These run the `tui.bench_step` sections
+once on a tiny random-weight llama and check the rows they report; speed targets stay in
 `make bench`.
 """
 
@@ -25,7 +25,7 @@ def test_the_matmul_section_measures_every_layout_at_one_and_four_rows():
     model = tiny_llama()
     rows = bench_step.matmul_rows(model, rounds=1)
     names = [r.name for r in rows]
-    variants = 6 if onednn_works(torch.float32) else 4  # common practice, no source: oneDNN is optional
+    variants = 6 if onednn_works(torch.float32) else 4  # the oneDNN layouts need oneDNN here
     assert len(rows) == 2 * 2 * variants  # two weights, two row counts
     assert any("oneDNN packed" in n for n in names) == onednn_works(torch.float32)
     assert all(r.value.endswith(" ms") for r in rows)

@@ -120,6 +120,11 @@ def test_epsilon_and_eta_worked_examples() -> None:
     eta = min(0.1, math.sqrt(0.1) * math.exp(-h))  # sqrt(0.1) exp(-0.869) = 0.133, so eta = 0.1
     assert eta == 0.1
     assert (dist("eta=0.1", x) > 0).tolist() == [True, True, False, False]
+    # a flatter step: H = 1.902 nats, sqrt(0.1) exp(-1.902) = 0.0472 < 0.1, so eta cuts
+    # at 0.0472 and keeps the 0.06 that a bare epsilon of 0.1 would cut (worked by hand)
+    x = np.log([0.3, 0.2, 0.1, 0.1, 0.1, 0.1, 0.06, 0.04])
+    assert (dist("eta=0.1", x) > 0).tolist() == [True] * 7 + [False]
+    assert (dist("epsilon=0.1", x) > 0).tolist() == [True, True] + [False] * 6
 
 
 @FAST
@@ -188,8 +193,9 @@ def test_no_repeat_ngram_worked_examples(n: int, banned: set[int]) -> None:
     assert {t for t in range(6) if probs[t] == 0} == banned
 
 
-def test_penalties_use_prompt_and_generated_tokens_alike() -> None:
-    # transformers 5.24.0 (decoder-only): the history is the whole context, prompt included
+def test_a_penalty_reads_the_whole_history_it_is_given() -> None:
+    # transformers 5.24.0 (decoder-only) penalises over the whole context, prompt included;
+    # the engine passes the prompt and the pane's tokens as one history (tui/engine.py)
     x = np.zeros(3)
     assert dist("presence_penalty=1", x, [2])[2] < dist("", x)[2]
 

@@ -54,4 +54,4 @@ def test_two_panes_with_one_recipe_and_shared_draws_write_the_same_text(lm):
         engine.step()
     a, b, c = engine.view().panes
     assert a.text == b.text and len(a.records) == len(b.records)
-    assert c.text != a.text or all(r.rank == 1 for r in a.records)
+    assert all(r.rank == 1 for r in c.records)  # greedy takes the argmax (definition)

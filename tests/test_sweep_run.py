@@ -73,7 +73,11 @@ def test_the_sweep_writes_every_file_and_prints_the_tables(swept):
         assert (out / name).is_file(), name
     assert (out / "sweep.toml").read_text() == sweep.read_text()
     versions = json.loads((out / "versions.json").read_text())
-    assert versions["transformers"] and versions["torch"] and versions["model"]["dtype"] == "float32"
+    import importlib.metadata
+
+    assert versions["transformers"] == importlib.metadata.version("transformers")
+    assert versions["torch"] == importlib.metadata.version("torch")
+    assert versions["model"]["dtype"] == "float32"
     assert (out / "front.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (RFC 2083)
     assert "tiny sweep: all 2 prompt(s)" in stdout and "tiny sweep: prompt 2" in stdout
     assert "greedy" in stdout and "temperature=1 top_k=20" in stdout

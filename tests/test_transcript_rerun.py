@@ -46,7 +46,7 @@ def saved(lm, tmp_path_factory) -> Path:
     engine.set_recipe(1, "min_p=0.2 temperature=1.3")
     for _ in range(3):
         engine.step()
-    fork = engine.fork(0, "top_p=0.6", "fork")
+    engine.fork(0, "top_p=0.6", "fork")
     engine.step()
     engine.force(0, engine.step_index, 5)  # the user picks token 5 in pane 0
     for _ in range(6):
@@ -54,7 +54,6 @@ def saved(lm, tmp_path_factory) -> Path:
     folder = tmp_path_factory.mktemp("rerun")
     path = transcript.write_atomic(folder / "s.jsonl",
                                    transcript.lines(engine.view(), info, engine.prompt_ids))
-    assert any(p.id == fork for p in engine.view().panes)
     return path
 
 

@@ -44,7 +44,8 @@ def bench_sweep(lm: LoadedModel, *, rows: int = 32, single_rows: int = 4,
 
     The 1-row rate is measured on `single_rows` samples (one chunk each), enough for a
     steady rate without tripling the run. Keys: rows_per_forward, tokens_per_s_batched,
-    tokens_per_s_single, speedup, target_speedup, meets_target, new_tokens, forward.
+    tokens_per_s_single, speedup, target_speedup, meets_target, tokens, seconds, new_tokens,
+    forward.
     """
 
     runner = lm.runner()

@@ -70,7 +70,10 @@ class Engine:
     def __init__(self, runner: Runner, decode: DecodeFn, prompt_ids: Sequence[int],
                  panes: Sequence[PaneSpec], *, seed: int = 0, shared_draws: bool = True,
                  max_new_tokens: int = 120, stop_strings: Sequence[str] = (),
-                 eos_ids: Sequence[int] = (), max_context: int = 2048) -> None:
+                 eos_ids: Sequence[int] = (), max_context: int = 2048,
+                 streams: Sequence[int] | None = None) -> None:
+        """`streams`: each pane's draw stream when draws are not shared (default: its id);
+        a re-run gives the original ids, so that its draws are the original ones."""
         if not prompt_ids:
             raise EngineError("the prompt is empty: give at least one token")
         if not 1 <= len(panes) <= MAX_PANES:
@@ -82,7 +85,6 @@ class Engine:
         self._decode = decode
         self.prompt_ids: tuple[int, ...] = tuple(prompt_ids)
         self.seed = seed
-        self.shared_draws = shared_draws
         self._draw_log: list[tuple[int, bool]] = [(0, shared_draws)]  # (from step, shared)
         self.max_new_tokens = max_new_tokens
         self.stop_strings = tuple(stop_strings)
@@ -96,14 +98,20 @@ class Engine:
         # The prompt is prefilled once; every row starts from this cache.
         self._prompt_kv, prompt_logits = runner.prefill([self.prompt_ids])
         self._prompt_logits = prompt_logits[0]
-        for spec in panes:
-            self._panes.append(self._new_pane(spec.name, Recipe.parse(spec.recipe), spec.seed))
+        for i, spec in enumerate(panes):
+            stream = None if streams is None else streams[i]
+            self._panes.append(self._new_pane(spec.name, Recipe.parse(spec.recipe), spec.seed, stream))
         self._live: list[int] = [p.id for p in self._panes]  # pane ids in batch-row order
         self._kv: KV = self._prompt_kv.select([0] * len(self._live))
         self._pending = self._prompt_logits.unsqueeze(0).repeat(len(self._live), 1)  # (B, V)
         self._parked: dict[int, KV] = {}  # stopped panes' cache rows, for rewinds
 
     # ----- reading ---------------------------------------------------------------
+
+    @property
+    def shared_draws(self) -> bool:
+        """Whether the panes share one uniform number per step now (the draw log's last entry)."""
+        return self._draw_log[-1][1]
 
     @property
     def step_index(self) -> int:
@@ -279,8 +287,10 @@ class Engine:
         last = [self.pane(pid).records[step - 1].token_id for pid in live]
         self._kv, self._pending = self.runner.step(kv, last)
 
-    def fork(self, pane_id: int, recipe: Recipe | str, name: str | None = None) -> int:
-        """A new pane that shares `pane_id`'s text so far and decodes on with `recipe`."""
+    def fork(self, pane_id: int, recipe: Recipe | str, name: str | None = None, *,
+             stream: int | None = None) -> int:
+        """A new pane that shares `pane_id`'s text so far and decodes on with `recipe`
+        (`stream`: its draw stream, as in `__init__`)."""
         with self._lock:
             source = self.pane(pane_id)
             if len(self._panes) >= MAX_PANES:
@@ -289,7 +299,7 @@ class Engine:
                 raise EngineError(f"pane {source.name!r} has stopped ({source.stop}); rewind "
                                   "before its last step to fork it")
             recipe = Recipe.parse(recipe) if isinstance(recipe, str) else recipe
-            pane = self._new_pane(name or f"{source.name} fork", recipe, None)
+            pane = self._new_pane(name or f"{source.name} fork", recipe, None, stream)
             step = len(source.records)
             pane.origin = (pane_id, step)
             pane.recipe_log = [(s, r) for s, r in source.recipe_log] + [(step, str(recipe))]
@@ -356,7 +366,7 @@ class Engine:
             pane.recipe = Recipe.parse(recipe) if isinstance(recipe, str) else recipe
             pane.sampler = pane.recipe.sampler()
             step = len(pane.records)
-            pane.recipe_log = [e for e in pane.recipe_log if e[0] < step] + [(step, str(pane.recipe))]
+            pane.recipe_log = _set_log(pane.recipe_log, step, str(pane.recipe))
 
     def force(self, pane_id: int, step: int, token_id: int) -> None:
         """Rewind to `step` and make `pane_id` emit `token_id` there instead of its draw."""
@@ -375,7 +385,7 @@ class Engine:
         with self._lock:
             self.rewind(0)
             self.seed = seed
-            self._draw_log = [(0, self.shared_draws)]
+            self._draw_log = [(0, self.shared_draws)]  # the present setting, from the start
             for pane in self._panes:
                 pane.sampler = pane.recipe.sampler()
             self._logits.clear()
@@ -383,9 +393,7 @@ class Engine:
     def set_shared_draws(self, shared: bool) -> None:
         """Takes effect from the next step on (the uniform numbers already drawn stay)."""
         with self._lock:
-            self.shared_draws = shared
-            step = self.step_index
-            self._draw_log = [e for e in self._draw_log if e[0] < step] + [(step, shared)]
+            self._draw_log = _set_log(self._draw_log, self.step_index, shared)
 
     # ----- for the inspect view (added by the app's engineer) --------------------------
 
@@ -401,9 +409,11 @@ class Engine:
 
     # ----- helpers --------------------------------------------------------------------
 
-    def _new_pane(self, name: str, recipe: Recipe, seed: int | None) -> Pane:
+    def _new_pane(self, name: str, recipe: Recipe, seed: int | None,
+                  stream: int | None = None) -> Pane:
         pane = Pane(id=self._next_id, name=name, recipe=recipe, sampler=recipe.sampler(),
-                    seed=seed, stream=self._next_id, recipe_log=[(0, str(recipe))])
+                    seed=seed, stream=self._next_id if stream is None else stream,
+                    recipe_log=[(0, str(recipe))])
         self._next_id += 1
         return pane
 
@@ -437,6 +447,11 @@ class Engine:
         limit = LOGITS_KEPT * max(1, len(self._panes))
         while len(self._logits) > limit:
             self._logits.popitem(last=False)
+
+
+def _set_log(log: list[tuple[int, T]], step: int, value: T) -> list[tuple[int, T]]:
+    """`value` from `step` on: changes planned at or after `step` give way to it."""
+    return [e for e in log if e[0] < step] + [(step, value)]
 
 
 def _clamp_log(log: list[tuple[int, T]], step: int) -> list[tuple[int, T]]:

@@ -20,8 +20,7 @@ from tui.errors import UserError
 from tui.record import StepRecord
 from tui.recovery import recovery_dir
 from tui.transcript import FORMAT, RECOVERY_FORMAT, PaneHeader, TranscriptHeader, transcript_lines
-from tui.transcript_reader import (TranscriptError, Warn, iter_json_lines, read_header_line,
-                                   step_of, warn_stderr)
+from tui.transcript_reader import TranscriptError, Warn, open_lines, step_of
 from tui.transcript_schema import SchemaError, parse_event
 
 
@@ -49,15 +48,7 @@ class RecoveredSession:
 def read_recovery(path: str | os.PathLike[str], *, warn: Warn | None = None) -> RecoveredSession:
     """Replay a recovery log; raises `TranscriptError` (``FILE:LINE: reason``) on bad lines."""
     path = Path(path)
-    warnings: list[str] = []
-
-    def note(message: str) -> None:
-        warnings.append(message)
-        (warn or warn_stderr)(message)
-
-    lines = iter_json_lines(path, warn=note)
-    first = next(lines, None)
-    head, _ = read_header_line(path, first, (RECOVERY_FORMAT,))
+    head, _, lines, warnings = open_lines(path, (RECOVERY_FORMAT,), warn)
     panes: dict[int, PaneHeader] = {p.id: p for p in head.panes}
     records: dict[int, list[StepRecord]] = {p.id: [] for p in head.panes}
     seed, shared, draw_log = head.seed, head.shared_draws, head.draw_log

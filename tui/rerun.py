@@ -76,14 +76,11 @@ def build_engine(head: TranscriptHeader, lm: "LoadedModel") -> tuple["Engine", d
         engine = Engine(lm.runner(), lm.decode, head.prompt_ids, specs, seed=head.seed,
                         shared_draws=head.draw_log[0][1] if head.draw_log else head.shared_draws,
                         max_new_tokens=head.max_new_tokens,
-                        stop_strings=head.stop, eos_ids=lm.eos_ids, max_context=lm.max_context)
+                        stop_strings=head.stop, eos_ids=lm.eos_ids, max_context=lm.max_context,
+                        streams=[p.id for p in starters])  # the draw stream follows the original id
     except EngineError as exc:
         raise UserError(f"cannot re-run: {exc}") from None
-    ids = {}
-    for pane, live in zip(starters, engine.view().panes):
-        ids[pane.id] = live.id
-        engine.pane(live.id).stream = pane.id  # the draw stream follows the original id
-    return engine, ids
+    return engine, {pane.id: live.id for pane, live in zip(starters, engine.view().panes)}
 
 
 def rerun(stored: StoredSession, lm: "LoadedModel") -> RerunResult:
@@ -92,21 +89,23 @@ def rerun(stored: StoredSession, lm: "LoadedModel") -> RerunResult:
 
     head = stored.header
     engine, ids = build_engine(head, lm)
-    forks = sorted((p for p in head.panes if p.origin), key=lambda p: p.id)
+    forks = [(p, p.origin) for p in sorted(head.panes, key=lambda p: p.id) if p.origin]
+    back = {live: own for own, live in ids.items()}  # engine pane id -> header pane id
     changes = {p.id: _changes(p) for p in head.panes}
     draw_changes = {s: shared for s, shared in head.draw_log if s > 0}
     compared = steps = 0
     difference = None
     try:
         for t, recs in stored.iter_steps():
-            for pane in [p for p in forks if p.origin and p.origin[1] == t]:
-                assert pane.origin is not None
-                source = ids.get(pane.origin[0])
+            for pane, (origin, at) in forks:
+                if at != t:
+                    continue
+                source = ids.get(origin)
                 if source is None:
-                    raise UserError(f"pane {pane.id} is forked from pane {pane.origin[0]}, "
+                    raise UserError(f"pane {pane.id} is forked from pane {origin}, "
                                     "which does not exist at that step")
-                ids[pane.id] = engine.fork(source, recipe_at_start(pane), pane.name)
-                engine.pane(ids[pane.id]).stream = pane.id
+                ids[pane.id] = engine.fork(source, recipe_at_start(pane), pane.name, stream=pane.id)
+                back[ids[pane.id]] = pane.id
             if t in draw_changes:
                 engine.set_shared_draws(draw_changes[t])
             for pane in head.panes:
@@ -115,11 +114,10 @@ def rerun(stored: StoredSession, lm: "LoadedModel") -> RerunResult:
                 rec = recs.get(pane.id)
                 if rec is not None and rec.forced and pane.id in ids:
                     engine.force(ids[pane.id], t, rec.token_id)
-            back = {v: k for k, v in ids.items()}
             fresh = {back[r.pane]: r for r in engine.step()}
             steps += 1
             for pane in head.panes:
-                if pane.id not in ids or (pane.origin and t < pane.origin[1]):
+                if pane.id not in ids:  # a fork enters at its origin step
                     continue
                 s, f = recs.get(pane.id), fresh.get(pane.id)
                 if s is None and f is None:

@@ -102,10 +102,11 @@ def write_json_atomic(path: Path, data: Any) -> None:
     write_text_atomic(path, json.dumps(data, indent=2, ensure_ascii=False) + "\n")
 
 
-def write_text_atomic(path: Path, text: str) -> None:
+def write_text_atomic(path: Path, text: str | bytes) -> None:
+    """Write `path` through a synced temporary file and one rename (text as UTF-8)."""
     tmp = path.with_name(path.name + ".tmp")
-    with open(tmp, "w", encoding="utf-8") as fh:
-        fh.write(text)
+    with open(tmp, "wb") as fh:
+        fh.write(text.encode("utf-8") if isinstance(text, str) else text)
         fh.flush()
         os.fsync(fh.fileno())
     os.replace(tmp, path)
@@ -336,12 +337,6 @@ def _write_merged(out: Path, first: SweepFolder, folders: Sequence[SweepFolder],
     for name in (SWEEP_FILE, VERSIONS):
         if (first.path / name).is_file():
             write_text_atomic(out / name, (first.path / name).read_text(encoding="utf-8"))
-    body = b"".join(_chunk_lines(c, chunks[c]) for c in sorted(chunks))
-    tmp = out / (SAMPLES + ".tmp")
-    with open(tmp, "wb") as fh:
-        fh.write(body)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, out / SAMPLES)
+    write_text_atomic(out / SAMPLES, b"".join(_chunk_lines(c, chunks[c]) for c in sorted(chunks)))
     write_json_atomic(out / MANIFEST, manifest.to_json())
     return SweepFolder(out, manifest, chunks)

@@ -104,7 +104,7 @@ def terminal_front(results: SweepResults, width: int | None = None,
     fig.clear()
     fig.plot_size(min(columns, 100), height)
     others = [r for r in rows if not r.on_front]
-    front = results.front(None)  # front points are finite (tui.pareto)
+    front = results.front(None)  # tui.pareto leaves NaN points off the front
     if others:
         fig.draw(fig.signal([r.point[0] for r in others], [r.point[1] for r in others],
                             marker="·"))

@@ -29,6 +29,7 @@ from tui.decoding import Recipe, Sampler, draw
 from tui.forward import KV
 from tui.metrics import SampleRecord
 from tui.record import STOP_CONTEXT, STOP_EOS, STOP_LENGTH, STOP_STRING, IncrementalDecoder
+from tui.sweep_spec import DEFAULT_CHUNK_ROWS
 
 DecodeFn = Callable[[Sequence[int]], str]
 StepHook = Callable[[int, int], None]  # (rows that emitted a token, rows that ended this step)
@@ -60,7 +61,7 @@ class SweepJob:
     samples: int
     max_new_tokens: int
     seed: int = 0
-    chunk_rows: int = 32
+    chunk_rows: int = DEFAULT_CHUNK_ROWS
     stop: tuple[str, ...] = ()
 
     def __post_init__(self) -> None:
@@ -81,10 +82,6 @@ class SweepJob:
             for start in range(0, len(pairs), self.chunk_rows):
                 out.append(Chunk(len(out), p, tuple(pairs[start:start + self.chunk_rows])))
         return out
-
-    @property
-    def total_rows(self) -> int:
-        return len(self.prompt_ids) * len(self.recipes) * self.samples
 
 
 def recipe_key(recipe: str) -> int:
@@ -189,8 +186,9 @@ class SweepRunner:
         row.kept.append(int(nz.size))
         nats = -float((nz * np.log(nz)).sum())
         row.entropies.append(nats if nats > 0 else 0.0)  # one-hot: +0.0, not -0.0
-        text = row.tail + row.decoder.push(token)
-        row.tail = text[-self._stop_span:] if self._stop_span else ""
+        if self._stop_span:  # the text matters only for stop strings (the sample's is made once)
+            text = row.tail + row.decoder.push(token)
+            row.tail = text[-self._stop_span:]
         if token in self._eos:
             row.ending = STOP_EOS
         elif self._stop_span and any(s in text for s in self.job.stop):

@@ -3,7 +3,7 @@
 A sweep is a TOML file of our own format (documented in the README):
 
     title = "..."                     # optional, default the file's stem
-    model = "smollm2-135m-instruct"   # optional, a catalogue name or a path
+    model = "smollm2-135m-instruct"   # optional, anything `--model` takes
     prompts = ["text", [{ role = "user", content = "..." }]]   # either prompts ...
     scenario = "harbour-town.toml"    # ... or a scenario file whose prompt is used
     recipes = ["greedy", "top_p=0.9"] # explicit recipe texts, and/or a [grid]
@@ -47,6 +47,7 @@ from tui.scenario import ROLES
 
 DEFAULT_MODEL = "smollm2-135m-instruct"  # the catalogue default (models.txt)
 MAX_NEW_TOKENS = 4096
+DEFAULT_CHUNK_ROWS = 32  # rows per forward pass unless the file says otherwise
 MAX_CHUNK_ROWS = 256
 MAX_RECIPES = 256
 FINGERPRINT_FORMAT = "logitfork-sweep/1"
@@ -72,7 +73,7 @@ class SweepSpec:
     samples: int
     max_new_tokens: int
     seed: int = 0
-    chunk_rows: int = 32
+    chunk_rows: int = DEFAULT_CHUNK_ROWS
     stop: tuple[str, ...] = ()
     path: Path = field(default=Path("<sweep>"), compare=False)
     source_text: str = field(default="", compare=False, repr=False)
@@ -90,9 +91,9 @@ class SweepSpec:
         """sha256 hex of everything that can change the sampled tokens.
 
         Covers model, prompts (or the scenario path as written relative to the sweep
-        file; the runner should add the scenario's own content), the expanded recipes,
-        samples, max_new_tokens, seed, chunk_rows and stop. Not the title, nor whether a
-        recipe came from the grid or the explicit list.
+        file; `tui.sweep_plan.run_fingerprint` adds the scenario's own content), the
+        expanded recipes, samples, max_new_tokens, seed, chunk_rows and stop. Not the
+        title, nor whether a recipe came from the grid or the explicit list.
         """
         normal = {
             "format": FINGERPRINT_FORMAT, "model": self.model,
@@ -187,7 +188,7 @@ def parse_sweep_text(text: str, path: str | Path = "<sweep>") -> SweepSpec:
         samples=_integer(data, "samples", path, 1, None, None),
         max_new_tokens=_integer(data, "max_new_tokens", path, 1, MAX_NEW_TOKENS, None),
         seed=_integer(data, "seed", path, 0, 2**63 - 1, 0),
-        chunk_rows=_integer(data, "chunk_rows", path, 1, MAX_CHUNK_ROWS, 32),
+        chunk_rows=_integer(data, "chunk_rows", path, 1, MAX_CHUNK_ROWS, DEFAULT_CHUNK_ROWS),
         stop=tuple(stop), path=path, source_text=text)
 
 

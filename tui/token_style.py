@@ -23,6 +23,7 @@ The scheme (the app's, first written in `tui/app/colouring.py`):
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import lru_cache
 
 # Okabe & Ito 2008, the eight-colour palette. sRGB values as reprinted by Wong 2011,
 # Nature Methods 8:441 (recalled from memory, as in tui/app/colouring.py).
@@ -130,20 +131,27 @@ def _rgb(hex_colour: str) -> tuple[int, int, int]:
 def token_colours(rank: int, final_prob: float, *, alternate: bool = False,
                   forced: bool = False, mono: bool = False) -> TokenColours:
     """The colours of one emitted token; `alternate` for every other token."""
-    ri, fi = rank_band(rank), final_band(min(final_prob, 1.0))
-    band, wash = RANK_BANDS[ri], FINAL_BANDS[fi].wash
+    return band_colours(rank_band(rank), final_band(min(final_prob, 1.0)),
+                        alternate=alternate, forced=forced, mono=mono)
+
+
+@lru_cache(maxsize=256)
+def band_colours(rank_i: int, final_i: int, *, alternate: bool = False, forced: bool = False,
+                 mono: bool = False) -> TokenColours:
+    """The colours for a rank band and a final band (indices into the two band tables)."""
+    band, wash = RANK_BANDS[rank_i], FINAL_BANDS[final_i].wash
     hue = MONO_WASH if mono else band.colour
     base = ALTERNATE_BACKGROUND if alternate else PANE_BACKGROUND
     if forced:
         mark = "#ffffff" if mono else FORCED_COLOUR
         return TokenColours(DARK_TEXT, blend(mark, base, 0.85 if alternate else 1.0), True,
-                            ri, fi)
+                            rank_i, final_i)
     if wash >= 1.0:  # highlighter: the band colour behind dark text
         return TokenColours(DARK_TEXT, blend(hue, base, 0.82 if alternate else 1.0), False,
-                            ri, fi)
+                            rank_i, final_i)
     # a wash alternates by its strength (a lighter base would cost contrast)
     bg = blend(hue, PANE_BACKGROUND, wash - (0.06 if alternate else 0.0)) if wash else base
-    return TokenColours(NEUTRAL if mono else band.colour, bg, False, ri, fi)
+    return TokenColours(NEUTRAL if mono else band.colour, bg, False, rank_i, final_i)
 
 
 LEGEND_TEXT = (

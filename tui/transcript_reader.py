@@ -17,16 +17,13 @@ import os
 import sys
 from dataclasses import dataclass
 from pathlib import Path
-from typing import IO, TYPE_CHECKING, Any, Callable, Iterator
+from typing import IO, Any, Callable, Iterator
 
 from tui.errors import UserError
 from tui.record import StepRecord, TopToken
 from tui.transcript import FORMAT, RECOVERY_FORMAT, PaneHeader, TranscriptHeader
 from tui.transcript_schema import (SchemaError, check_format, check_step, parse_header,
                                    parse_step, upgrade_header)
-
-if TYPE_CHECKING:
-    from tui.views import SessionView
 
 MAX_LINE_BYTES = 16 * 1024 * 1024  # a step line is a few KB; a header holds the prompt
 Warn = Callable[[str], None]
@@ -121,6 +118,23 @@ def read_header_line(path: str | os.PathLike[str], line: RawLine | None,
         raise TranscriptError(path, 1, str(exc)) from None
 
 
+def open_lines(path: Path, formats: tuple[str, ...], warn: Warn | None
+               ) -> tuple[TranscriptHeader, RawLine, Iterator[RawLine], list[str]]:
+    """Start reading a file of one of `formats`: its header, the header's line, the lines
+    after it, and the list their warnings go to (each also told to `warn`, stderr by default)."""
+    warnings: list[str] = []
+
+    def note(message: str) -> None:
+        warnings.append(message)
+        (warn or warn_stderr)(message)
+
+    lines = iter_json_lines(path, warn=note)
+    first = next(lines, None)
+    head, _ = read_header_line(path, first, formats)
+    assert first is not None  # read_header_line raised otherwise
+    return head, first, lines, warnings
+
+
 def step_of(path: str | os.PathLike[str], line: RawLine) -> StepRecord:
     try:
         return parse_step(line.obj)
@@ -197,16 +211,7 @@ class StoredSession:
     def open(cls, path: str | os.PathLike[str], *, warn: Warn | None = None) -> "StoredSession":
         """One validating pass over the file; raises `TranscriptError` on bad input."""
         path = Path(path)
-        warnings: list[str] = []
-
-        def note(message: str) -> None:
-            warnings.append(message)
-            (warn or warn_stderr)(message)
-
-        lines = iter_json_lines(path, warn=note)
-        first = next(lines, None)
-        head, _ = read_header_line(path, first, (FORMAT,))
-        assert first is not None
+        head, first, lines, warnings = open_lines(path, (FORMAT,), warn)
         order = _OrderCheck(path, head)
         offsets: list[int] = []
         end = first.end
@@ -283,30 +288,6 @@ class StoredSession:
     def pane_text(self, pane_id: int) -> str:
         return "".join(r.text for r in self.pane_records(pane_id))
 
-    def columns(self, *fields: str) -> dict[int, dict[str, list[float]]]:
-        """Per pane, per field, the values over the steps (for plots and sparklines)."""
-        out = {p.id: {f: [] for f in fields} for p in self.header.panes}
-        for rec in self.iter_records():
-            col = out[rec.pane]
-            for f in fields:
-                col[f].append(float(getattr(rec, f)))
-        return out
-
-    def to_view(self) -> "SessionView":
-        """The whole session as an engine `SessionView` (reads every record into memory).
-
-        For showing a stored session with code written for live ones; no torch involved.
-        """
-        from tui.views import PaneView, SessionView
-
-        records: dict[int, list[StepRecord]] = {p.id: [] for p in self.header.panes}
-        for rec in self.iter_records():
-            records[rec.pane].append(rec)
-        panes = tuple(PaneView(p.id, p.name, p.recipe, p.seed, tuple(records[p.id]), p.stop,
-                               p.recipe_log, p.origin) for p in self.header.panes)
-        return SessionView(self.steps, self.header.seed, self.header.shared_draws, panes,
-                           self.header.draw_log)
-
     def _check_unchanged(self) -> None:
         if _stamp(self.path) != self._stamp:
             raise UserError(f"{self.path}: the file changed after it was opened; open it again")
@@ -318,8 +299,3 @@ def _stamp(path: Path) -> tuple[int, int]:
     except OSError:
         return (-1, -1)
     return (st.st_size, st.st_mtime_ns)
-
-
-def open_transcript(path: str | os.PathLike[str], *, warn: Warn | None = None) -> StoredSession:
-    """`StoredSession.open`, the name commands use."""
-    return StoredSession.open(path, warn=warn)

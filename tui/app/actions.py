@@ -293,7 +293,6 @@ class SessionActions:
 
     def _saved(self: "LogitforkApp", path: Path, version: int, then_quit: bool) -> None:
         self.saved_version = version
-        self.last_saved = path
         self.notify(f"saved {path}", markup=False)
         if then_quit:
             self.exit()

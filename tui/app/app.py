@@ -2,8 +2,9 @@
 
 `LogitforkApp` is built on a session source (see `source.py`): a `SessionLoader`
 (the model loads in a worker while a progress panel shows), a `LiveSource` on a ready
-engine, or a read-only `StaticSource` (a replay, see `replay_source.py`). All engine
-work runs on one worker thread through a `Stepper`; this module only shows snapshots
+engine, or a read-only `StaticSource` (a replay, see `replay_source.py`). Every change
+to the engine runs on one worker thread through a `Stepper` (the inspect view only reads,
+on its own worker); this module only shows snapshots
 and turns keys into requests. The key actions live in `actions.py`, the crash-recovery
 log and the reopen offer in `recovery_offer.py`; `make_app` is the one factory used by
 the `watch` and `replay` commands and by the tests. Importing it loads no torch.

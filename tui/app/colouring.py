@@ -33,13 +33,8 @@ from tui import token_style as ts
 # module only turns it into Rich styles.
 OKABE_ITO = ts.OKABE_ITO
 PANE_BACKGROUND = ts.PANE_BACKGROUND  # app.tcss uses the same value
-ALTERNATE_BACKGROUND = ts.ALTERNATE_BACKGROUND
-NEUTRAL = ts.NEUTRAL
-DARK_TEXT = ts.DARK_TEXT
 PROMPT_STYLE = Style(color=ts.PROMPT_COLOUR, bgcolor=PANE_BACKGROUND, italic=True)
 FORCED_MARK = ts.FORCED_MARK
-MONO_WASH = ts.MONO_WASH
-FinalBand = ts.FinalBand
 FINAL_BANDS = ts.FINAL_BANDS
 rank_band = ts.rank_band
 final_band = ts.final_band
@@ -80,7 +75,7 @@ class Scheme:
         return _token_style(self.mono, rank_band(rank), 0, False, False)
 
     def marker_style(self) -> Style:
-        colour = "#ffffff" if self.mono else OKABE_ITO["bluish_green"]
+        colour = "#ffffff" if self.mono else ts.FORCED_COLOUR
         return Style(color=colour, bgcolor=PANE_BACKGROUND, bold=True)
 
     def legend(self) -> Text:
@@ -102,19 +97,6 @@ class Scheme:
 
 @lru_cache(maxsize=256)
 def _token_style(mono: bool, rank_i: int, final_i: int, alternate: bool, forced: bool) -> Style:
-    band = RANK_BANDS[rank_i]
-    wash = FINAL_BANDS[final_i].wash
-    hue = MONO_WASH if mono else band.colour
-    base = ALTERNATE_BACKGROUND if alternate else PANE_BACKGROUND
-    if forced:
-        colour = "#ffffff" if mono else OKABE_ITO["bluish_green"]
-        bg = blend(colour, base, 0.85 if alternate else 1.0)
-        style = Style(color=DARK_TEXT, bgcolor=bg, bold=True)
-    elif wash >= 1.0:  # highlighter: the band colour behind dark text
-        bg = blend(hue, base, 0.82 if alternate else 1.0)
-        style = Style(color=DARK_TEXT, bgcolor=bg)
-    else:
-        # a wash alternates by its strength (a lighter base would cost contrast)
-        bg = blend(hue, PANE_BACKGROUND, wash - (0.06 if alternate else 0.0)) if wash else base
-        style = Style(color=NEUTRAL if mono else band.colour, bgcolor=bg)
-    return style + band.mono if mono else style
+    c = ts.band_colours(rank_i, final_i, alternate=alternate, forced=forced, mono=mono)
+    style = Style(color=c.foreground, bgcolor=c.background, bold=c.bold or None)
+    return style + RANK_BANDS[rank_i].mono if mono else style

@@ -1,7 +1,8 @@
 """The footer: every key of the screen on screen, wrapped onto as many lines as it needs.
 
 Textual's own footer keeps to one line and cuts what does not fit; at 80 columns this
-app has more keys than that. Disabled keys (read-only mode, a dialog open) are dimmed.
+app has more keys than that. Keys that would change a read-only session are dimmed;
+the panes' keys are hidden while another screen (a dialog, inspect, help) is on top.
 """
 
 from __future__ import annotations

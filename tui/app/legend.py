@@ -12,4 +12,3 @@ class Legend(Static):
 
     def __init__(self, scheme: Scheme, id: str | None = None) -> None:
         super().__init__(scheme.legend(), id=id)
-        self.scheme = scheme

@@ -1,8 +1,8 @@
 """The engine's one worker: runs steps while running and the app's operations between them.
 
 The app never calls a locking engine method on its own thread, so a key is answered
-while a step (or a slow rewind) is under way. Everything that touches the engine goes
-through one `Stepper`: its `serve` loop runs in a Textual thread worker and does, in
+while a step (or a slow rewind) is under way. Everything that changes the engine goes
+through one `Stepper` (readers such as the inspect view take the engine's lock briefly): its `serve` loop runs in a Textual thread worker and does, in
 order, any queued operation (fork, edit, force, ...) and then, while running, one step.
 Pausing takes effect after the step under way. After each unit of work it hands a
 `SessionView` snapshot to `emit` (thread-safe in the app: `post_message`).

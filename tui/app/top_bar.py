@@ -19,7 +19,7 @@ class BarState:
     shared_draws: bool | None = None
     steps_per_second: float | None = None
     running: bool = False
-    busy: str = ""  # an operation under way, e.g. "forking"
+    busy: str = ""  # the label of an operation under way, e.g. "fork"
     step: int = 0
     cursor: int = 0
     read_only: bool = False
@@ -65,10 +65,6 @@ class TopBar(Static):
     def __init__(self, id: str | None = None) -> None:
         super().__init__(Text(), id=id)
         self._state = BarState(loading=True)
-
-    @property
-    def state(self) -> BarState:
-        return self._state
 
     def set_state(self, state: BarState) -> None:
         if state != self._state:
