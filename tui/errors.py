@@ -7,7 +7,9 @@ never with a traceback.
 
 from __future__ import annotations
 
+import os
 from pathlib import Path
+from typing import BinaryIO
 
 
 class UserError(Exception):
@@ -28,19 +30,30 @@ def located(path: object, field: str, reason: str) -> UserError:
 
 
 
-def read_text_input(path: Path, what: str) -> str:
-    """A user's UTF-8 text file, or a `UserError` saying why it cannot be read.
+def open_input(path: str | os.PathLike[str], what: str) -> BinaryIO:
+    """A user's file opened for reading bytes, or a `UserError` saying why it cannot be.
 
-    `what` names the expected kind of file ("scenario file", "sweep file") in the
-    message for a folder given instead.
+    `what` names the expected kind of file ("transcript", "sweep file") in the message
+    for a folder given instead.
     """
     try:
-        return path.read_text(encoding="utf-8")
+        return open(path, "rb")
     except FileNotFoundError:
         raise UserError(f"{path}: no such file") from None
     except IsADirectoryError:
         raise UserError(f"{path}: is a folder, not a {what}") from None
-    except UnicodeDecodeError as exc:
-        raise UserError(f"{path}: not UTF-8 text ({exc.reason})") from None
     except OSError as exc:
         raise UserError(f"{path}: cannot be read ({exc.strerror})") from None
+
+
+def read_text_input(path: Path, what: str) -> str:
+    """A user's UTF-8 text file (see `open_input`), or a `UserError`."""
+    with open_input(path, what) as fh:
+        try:
+            data = fh.read()
+        except OSError as exc:
+            raise UserError(f"{path}: cannot be read ({exc.strerror})") from None
+    try:
+        return data.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise UserError(f"{path}: not UTF-8 text ({exc.reason})") from None

@@ -17,9 +17,9 @@ import os
 import sys
 from dataclasses import dataclass
 from pathlib import Path
-from typing import IO, Any, Callable, Iterator
+from typing import Any, Callable, Iterator
 
-from tui.errors import UserError
+from tui.errors import UserError, open_input
 from tui.record import StepRecord, TopToken
 from tui.transcript import FORMAT, RECOVERY_FORMAT, PaneHeader, TranscriptHeader
 from tui.transcript_schema import (SchemaError, check_format, check_step, parse_header,
@@ -59,15 +59,7 @@ _DECODER = json.JSONDecoder(parse_constant=_reject_constant)  # RFC 8259 has no 
 def iter_json_lines(path: str | os.PathLike[str], *, start: int = 0, first_line: int = 1,
                     stop: int | None = None, warn: Warn | None = None) -> Iterator[RawLine]:
     """Each line of `path` as a JSON object, from byte `start` up to byte `stop`."""
-    try:
-        fh: IO[bytes] = open(path, "rb")
-    except FileNotFoundError:
-        raise UserError(f"{path}: no such file") from None
-    except IsADirectoryError:
-        raise UserError(f"{path}: is a folder, not a transcript") from None
-    except OSError as exc:
-        raise UserError(f"{path}: cannot be read ({exc.strerror})") from None
-    with fh:
+    with open_input(path, "transcript") as fh:
         fh.seek(start)
         offset, number = start, first_line
         while stop is None or offset < stop:
