@@ -1,13 +1,15 @@
-"""The one error type that reaches the user as a single line.
+"""The one error type that reaches the user as a single line, and its helpers.
 
 Anything the user can get wrong (a file, a field, a model name) raises `UserError`;
 the command line prints `error: <message>` on stderr and exits with `exit_code`,
-never with a traceback.
+never with a traceback. `open_input`/`read_text_input` turn a file that cannot be read
+into such a line; `first_line` shortens a library's exception for one.
 """
 
 from __future__ import annotations
 
 import os
+import re
 from pathlib import Path
 from typing import BinaryIO
 
@@ -57,3 +59,11 @@ def read_text_input(path: Path, what: str) -> str:
         return data.decode("utf-8")
     except UnicodeDecodeError as exc:
         raise UserError(f"{path}: not UTF-8 text ({exc.reason})") from None
+
+
+def first_line(exc: BaseException) -> str:
+    """The first line of an exception's message, whitespace folded, at most 240 characters."""
+    text = str(exc).strip().splitlines()
+    line = text[0] if text else type(exc).__name__
+    line = re.sub(r"\s+", " ", line)
+    return line if len(line) <= 240 else line[:237] + "..."

@@ -7,12 +7,11 @@ imported here.
 
 from __future__ import annotations
 
-import re
 import threading
 from dataclasses import dataclass, field
 from typing import TYPE_CHECKING, Callable, Sequence
 
-from tui.errors import UserError
+from tui.errors import UserError, first_line
 
 if TYPE_CHECKING:
     from transformers import PreTrainedModel, PreTrainedTokenizerBase
@@ -114,11 +113,3 @@ class LoadedModel:
     def decode(self, ids: Sequence[int]) -> str:
         """Text of `ids`, special tokens included, spacing untouched."""
         return self.tokenizer.decode(list(ids), skip_special_tokens=False, clean_up_tokenization_spaces=False)
-
-
-def first_line(exc: BaseException) -> str:
-    """The first line of an exception's message, whitespace folded, at most 240 characters."""
-    text = str(exc).strip().splitlines()
-    line = text[0] if text else type(exc).__name__
-    line = re.sub(r"\s+", " ", line)
-    return line if len(line) <= 240 else line[:237] + "..."

@@ -18,17 +18,17 @@ import json
 import os
 import time
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Callable, Sequence
+from typing import TYPE_CHECKING, Any, Sequence
 
 from tui import model_cache
-from tui.errors import UserError
-from tui.loaded_model import LoadedModel, first_line
+from tui.errors import UserError, first_line
+from tui.loaded_model import LoadedModel
+from tui.model_cache import Progress
 from tui.model_sources import ResolvedSource
 
 if TYPE_CHECKING:
     from transformers import PreTrainedModel
 
-Progress = Callable[[str, float], None]
 LOADER_ENV = "LOGITFORK_LOADER"  # auto (default: direct where it can) or transformers
 CONTEXT_KEYS = ("max_position_embeddings", "n_positions", "n_ctx", "seq_length")  # config keys, in order
 

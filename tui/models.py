@@ -19,11 +19,11 @@ from __future__ import annotations
 import os
 import sys
 import time
-from typing import Callable
 
 from tui import model_cache
-from tui.errors import UserError
-from tui.loaded_model import LoadedModel, first_line
+from tui.errors import UserError, first_line
+from tui.loaded_model import LoadedModel
+from tui.model_cache import Progress
 from tui.model_loading import LOADER_ENV, load_direct, load_transformers, loader_choice
 from tui.model_sources import (
     CatalogueEntry,
@@ -53,7 +53,6 @@ __all__ = [
 
 DEFAULT_MODEL = "smollm2-135m-instruct"
 DTYPES = ("float32", "bfloat16")
-Progress = Callable[[str, float], None]
 
 
 def load_model(

@@ -19,7 +19,7 @@ from typing import Any, TextIO
 from tui.sweep_folder import SweepFolder, write_text_atomic
 from tui.sweep_results import (AXIS_LABELS, DIVERSITY, LIKELIHOOD, TABLE_COLUMNS, ResultRow,
                                SweepResults, compute_results, csv_text, endings_text,
-                               interval_text, markdown_text, scope_title)
+                               interval_text, label_of, markdown_text, scope_title)
 
 MIN_CHART_WIDTH = 60  # narrower terminals get no terminal chart
 FILE_WIDTH = 400  # console width when the output is not a terminal: every measure fits
@@ -27,10 +27,6 @@ FILE_WIDTH = 400  # console width when the output is not a terminal: every measu
 COLUMN_PRIORITY = ("distinct_2", "mean_logprob", "self_bleu", "repetition_4", "endings",
                    "perplexity", "mean_kept", "mean_final_entropy", "distinct_1")
 ALWAYS_SHOWN = 2
-
-
-def label_of(recipe: str) -> str:
-    return recipe or "(model as is)"
 
 
 def _table(results: SweepResults, prompt: int | None, shown: tuple[str, ...]) -> Any:

@@ -30,6 +30,11 @@ LIKELIHOOD = "mean_logprob"
 AXIS_LABELS = {DIVERSITY: "distinct-2 (diversity)", LIKELIHOOD: "mean log-prob (likelihood)"}
 
 
+def label_of(recipe: str) -> str:
+    """How a recipe is named in tables and charts (the empty recipe changes nothing)."""
+    return recipe or "(model as is)"
+
+
 @dataclass(frozen=True)
 class ResultRow:
     """One recipe's measures in one scope: all prompts (`prompt` None) or one prompt."""
@@ -170,7 +175,7 @@ def markdown_text(results: SweepResults) -> str:
         lines.append("|" + "|".join(" --- " for _ in header) + "|")
         for row in results.scope(prompt):
             m = row.measures
-            cells = ["*" if row.on_front else "", f"`{_md(row.recipe or '(model as is)')}`",
+            cells = ["*" if row.on_front else "", f"`{_md(label_of(row.recipe))}`",
                      str(m.n_samples)]
             for name, _, digits in TABLE_COLUMNS:
                 iv = getattr(m, name)

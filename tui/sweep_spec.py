@@ -43,9 +43,9 @@ from pathlib import Path, PurePosixPath
 from typing import Any
 
 from tui.errors import UserError, located, read_text_input
+from tui.models import DEFAULT_MODEL
 from tui.scenario import ROLES
 
-DEFAULT_MODEL = "smollm2-135m-instruct"  # the catalogue default (models.txt)
 MAX_NEW_TOKENS = 4096
 DEFAULT_CHUNK_ROWS = 32  # rows per forward pass unless the file says otherwise
 MAX_CHUNK_ROWS = 256

@@ -71,7 +71,7 @@ def _write_generation_config(recipe: object, folder: str, lossy: bool) -> int:
     import warnings
 
     from tui.decoding.hf import RecipeWarning
-    from tui.errors import UserError
+    from tui.errors import UserError, first_line
 
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
@@ -85,8 +85,7 @@ def _write_generation_config(recipe: object, folder: str, lossy: bool) -> int:
     try:
         config.save_pretrained(folder)
     except (OSError, ValueError) as exc:
-        reason = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
-        raise UserError(f"{folder}: cannot write the generation config: {reason}") from None
+        raise UserError(f"{folder}: cannot write the generation config: {first_line(exc)}") from None
     for message in lost:
         print(f"warning: {message}", file=sys.stderr)
     print(f"generation config: {folder}/generation_config.json", file=sys.stderr)
