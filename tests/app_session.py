@@ -15,9 +15,9 @@ from typing import Callable
 from textual.pilot import Pilot
 
 from tui.app.app import LogitforkApp, make_app
-from tui.app.source import LiveSource
-from tui.scenario import Scenario, find_scenario, load_scenario
-from tui.session import open_session
+from tui.session.opening import open_session
+from tui.session.scenario import Scenario, find_scenario, load_scenario
+from tui.workbench.source import LiveSource
 
 TEST_MODEL_NAME = "tiny-llama (test)"
 

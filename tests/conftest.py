@@ -34,6 +34,6 @@ def tiny_model_dir(tmp_path_factory: pytest.TempPathFactory) -> Path:
       ``<|assistant|>`` when `add_generation_prompt=True`.
 
     Read-only: copy it (shutil.copytree) before changing files in it.
-    Load with `tui.models.load_model(str(tiny_model_dir))`.
+    Load with `tui.model.catalogue.load_model(str(tiny_model_dir))`.
     """
     return build_tiny_model(tmp_path_factory.mktemp("tiny_model"))

@@ -15,9 +15,9 @@ import math
 import numpy as np
 import pytest
 
-from tui.app.approx_recipes import approx_recipe_rows, partial_logits
-from tui.record import StepRecord, TopToken
-from tui.views import PaneView
+from tui.session.approx_recipes import approx_recipe_rows, partial_logits
+from tui.session.record import StepRecord, TopToken
+from tui.session.views import PaneView
 
 try:
     from app_session import scenario
@@ -78,8 +78,8 @@ def test_the_missing_mass_sits_below_the_stored_tokens_by_hand():
 @pytest.fixture(scope="module")
 def real_steps(tiny_model_dir):
     """(record, full logits, history) of every pane at several steps of a real session."""
-    from tui.models import load_model
-    from tui.session import open_session
+    from tui.model.catalogue import load_model
+    from tui.session.opening import open_session
 
     lm = load_model(str(tiny_model_dir))
     engine, _ = open_session(lm, scenario(), seed=11)

@@ -11,8 +11,15 @@ import itertools
 
 import pytest
 
-from tui.app.colouring import (FINAL_BANDS, OKABE_ITO, RANK_BANDS, Scheme, blend, final_band,
-                               rank_band)
+from tui.app.colouring import (
+    FINAL_BANDS,
+    OKABE_ITO,
+    RANK_BANDS,
+    Scheme,
+    blend,
+    final_band,
+    rank_band,
+)
 
 
 def relative_luminance(hex_colour: str) -> float:

@@ -2,7 +2,7 @@
 
 Start, step, pause, the cursor, inspect, fork, edit (valid and invalid), add and remove
 a pane, save, quit. Expected values come from the engine's own snapshots and from the
-transcript reader (`tui.transcript.read_records`), i.e. from outside the app; the
+transcript reader (`tui.transcripts.reader.StoredSession`), i.e. from outside the app; the
 inspect table's cumulative mass is checked against a hand sum of the raw probabilities.
 """
 
@@ -16,7 +16,7 @@ from tui.app.inspect_screen import InspectScreen
 from tui.app.recipe_dialog import RecipeDialog
 from tui.app.safe_text import shown
 from tui.app.token_pane import TokenPane
-from tui.transcript import read_records
+from tui.transcripts.reader import StoredSession
 
 try:
     from app_session import idle, live_app, steps, wait_until
@@ -26,7 +26,7 @@ except ImportError:
 
 @pytest.fixture(scope="module")
 def lm(tiny_model_dir):
-    from tui.models import load_model
+    from tui.model.catalogue import load_model
 
     return load_model(str(tiny_model_dir))
 
@@ -174,8 +174,9 @@ async def test_save_and_quit(lm, tmp_path):
         dialog.query_one("#dialog-value", Input).value = str(target)
         await pilot.press("enter")
         await wait_until(pilot, lambda: target.exists() and not app.unsaved, what="the save")
-        head, records = read_records(target)
-        assert head["seed"] == 3 and len(head["panes"]) == 4
+        stored = StoredSession.open(target)
+        head, records = stored.header, list(stored.iter_records())
+        assert head.seed == 3 and len(head.panes) == 4
         assert len(records) == 4 * 5
         view = app.view
         by_pane = {p.id: [r.token_id for r in p.records] for p in view.panes}

@@ -29,7 +29,7 @@ KEY_BOUND_SECONDS = 0.100  # the issue's bound: "keys answer within 100 ms while
 
 @pytest.fixture(scope="module")
 def lm(tiny_model_dir):
-    from tui.models import load_model
+    from tui.model.catalogue import load_model
 
     return load_model(str(tiny_model_dir))
 

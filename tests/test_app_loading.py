@@ -9,10 +9,10 @@ from __future__ import annotations
 
 from tui.app.app import LogitforkApp, make_app
 from tui.app.loading_panel import LoadingPanel
-from tui.app.source import SessionLoader
 from tui.cli import main as cli_main
 from tui.commands.watch import wants_mono
-from tui.scenario import find_scenario, load_scenario
+from tui.session.scenario import find_scenario, load_scenario
+from tui.workbench.source import SessionLoader
 
 try:
     from app_session import wait_until
@@ -52,7 +52,7 @@ async def test_a_model_that_cannot_load_ends_the_app_with_one_line(tmp_path):
 def test_the_loader_takes_the_scenarios_model_unless_told():
     sc = load_scenario(find_scenario(None))
     assert SessionLoader(sc, model="x").model_name == "x"
-    from tui.models import DEFAULT_MODEL
+    from tui.model.catalogue import DEFAULT_MODEL
 
     assert SessionLoader(sc).model_name == (sc.model or DEFAULT_MODEL)
 

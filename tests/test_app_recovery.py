@@ -2,7 +2,7 @@
 
 Driven with Textual's test harness on the tiny model, with the state folder in a temp
 folder (`LOGITFORK_STATE_DIR`). What the log holds is read back with
-`tui.recovery_reader.read_recovery` and compared with the engine's own snapshots, i.e.
+`tui.transcripts.recovery_reader.read_recovery` and compared with the engine's own snapshots, i.e.
 from outside the app. The rules checked (keep the log unless the session ended
 cleanly with nothing unsaved; offer the newest log of a session no longer running)
 are the project's own contract; no outside source applies.
@@ -21,9 +21,9 @@ from textual.widgets import Input
 from tui.app.app import make_app
 from tui.app.confirm_dialog import ConfirmDialog
 from tui.app.input_dialog import InputDialog
-from tui.app.stepper import Failed, Stepped, Stepper
-from tui.recovery import STATE_DIR_ENV, RecoveryLog, recovery_dir
-from tui.recovery_reader import read_recovery
+from tui.transcripts.recovery_log import STATE_DIR_ENV, RecoveryLog, recovery_dir
+from tui.transcripts.recovery_reader import read_recovery
+from tui.workbench.stepper import Failed, Stepped, Stepper
 
 try:
     from app_session import idle, live_source, steps, wait_until
@@ -33,7 +33,7 @@ except ImportError:
 
 @pytest.fixture(scope="module")
 def lm(tiny_model_dir):
-    from tui.models import load_model
+    from tui.model.catalogue import load_model
 
     return load_model(str(tiny_model_dir))
 

@@ -1,8 +1,8 @@
 """`logitfork replay`: a transcript written by a real session, opened in the app without a model.
 
-The transcript comes from a real session on the tiny model (`tui.session.open_session`,
-`tui.transcript.lines`, `write_atomic`); what the app shows is checked against the
-engine's own records of that session and against `tui.transcript_reader.StoredSession`,
+The transcript comes from a real session on the tiny model (`tui.session.opening.open_session`,
+`tui.transcripts.format.lines`, `write_atomic`); what the app shows is checked against the
+engine's own records of that session and against `tui.transcripts.reader.StoredSession`,
 i.e. from outside the app. The cumulative raw mass is checked against a hand sum;
 "kept" means final probability > 0, the app's rule for a stored list (common practice,
 no source: a token outside the support has probability 0). No timing is asserted here;
@@ -22,12 +22,12 @@ from textual.widgets import DataTable
 from tui.app.app import make_app
 from tui.app.inspect_screen import InspectScreen
 from tui.app.key_bar import key_items
-from tui.app.replay_source import replay_source
 from tui.app.safe_text import shown, shown_token
-from tui.app.step_analysis import format_prob
 from tui.cli import main as cli_main
-from tui.transcript import lines, write_atomic
-from tui.transcript_reader import StoredSession
+from tui.session.step_analysis import format_prob
+from tui.transcripts.format import lines, write_atomic
+from tui.transcripts.reader import StoredSession
+from tui.workbench.replay_source import replay_source
 
 try:
     from app_session import scenario, wait_until
@@ -41,8 +41,8 @@ REASON = "replay: no model loaded"
 @pytest.fixture(scope="module")
 def recorded(tiny_model_dir, tmp_path_factory):
     """(transcript path, the engine's final view) of a real 14-step session with a fork."""
-    from tui.models import load_model
-    from tui.session import open_session
+    from tui.model.catalogue import load_model
+    from tui.session.opening import open_session
 
     lm = load_model(str(tiny_model_dir))
     engine, info = open_session(lm, scenario(), seed=5)
@@ -164,7 +164,7 @@ async def test_a_cut_last_line_is_left_out_and_told_in_the_app(recorded, tmp_pat
 
 
 def test_a_recovery_log_replays_too(recorded, tmp_path):
-    from tui.recovery import RecoveryLog
+    from tui.transcripts.recovery_log import RecoveryLog
 
     path, live = recorded
     stored = StoredSession.open(path)
@@ -181,7 +181,7 @@ def _info_of(stored: StoredSession):
     """A `SessionInfo` with the stored header's facts (for writing a log header)."""
     from dataclasses import replace
 
-    from tui.session import SessionInfo
+    from tui.session.opening import SessionInfo
 
     head = stored.header
     sc = replace(scenario(), title=head.title, prompt=head.prompt_text, seed=head.seed)
@@ -192,7 +192,7 @@ NO_TORCH = r"""
 import asyncio, json, sys
 from tui.app.app import make_app
 from tui.app.inspect_screen import InspectScreen
-from tui.app.replay_source import replay_source
+from tui.workbench.replay_source import replay_source
 
 async def main():
     app = make_app(source=replay_source(sys.argv[1]))
@@ -203,7 +203,7 @@ async def main():
         while not (isinstance(app.screen, InspectScreen) and app.screen.analysed):
             await pilot.pause(0.02)
         rows = len(app.screen.rows)
-    heavy = sorted(m for m in ("torch", "transformers", "tui.engine", "tui.models")
+    heavy = sorted(m for m in ("torch", "transformers", "tui.session.engine", "tui.model.catalogue")
                    if m in sys.modules)
     print(json.dumps({"rows": rows, "heavy": heavy}))
 

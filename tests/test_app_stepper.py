@@ -13,8 +13,15 @@ import time
 
 import pytest
 
-from tui.app.stepper import Failed, OperationDone, RunChanged, Stepped, Stepper, describe
-from tui.engine import EngineError, PaneView, SessionView
+from tui.session.engine import EngineError, PaneView, SessionView
+from tui.workbench.stepper import (
+    Failed,
+    OperationDone,
+    RunChanged,
+    Stepped,
+    Stepper,
+    describe,
+)
 
 
 class FakeEngine:

@@ -17,10 +17,10 @@ from rich.text import Text
 
 from tui.app.colouring import FORCED_MARK, Scheme
 from tui.app.safe_text import SPACE_MARK, is_safe, shown, shown_line, shown_token
-from tui.app.source import StaticSource
 from tui.app.token_pane import pane_text
-from tui.engine import PaneView, SessionView
-from tui.record import StepRecord, TopToken
+from tui.session.engine import PaneView, SessionView
+from tui.session.record import StepRecord, TopToken
+from tui.workbench.source import StaticSource
 
 try:
     from app_session import live_source, wait_until
@@ -76,7 +76,7 @@ def test_pane_text_never_reads_markup():
 
 @pytest.fixture(scope="module")
 def lm(tiny_model_dir):
-    from tui.models import load_model
+    from tui.model.catalogue import load_model
 
     return load_model(str(tiny_model_dir))
 

@@ -1,7 +1,7 @@
 """The step and matmul sections of `make bench` run on a tiny model (figures not checked).
 
 The benchmark only runs on the real model by hand, so a section that no longer fits the
-code it measures would go unnoticed until then. These run the `tui.bench_step` sections
+code it measures would go unnoticed until then. These run the `tui.bench.step` sections
 once on a tiny random-weight llama and check the rows they report; speed targets stay in
 `make bench`.
 """
@@ -10,10 +10,10 @@ from __future__ import annotations
 
 import torch
 
-from tui import bench_step
-from tui.bench import render
-from tui.forward import Runner
-from tui.lean_llama import LeanRunner, onednn_works
+from tui.bench.table import render
+from tui.bench import step as bench_step
+from tui.model.forward import Runner
+from tui.model.lean_llama import LeanRunner, onednn_works
 
 try:
     from tiny_model import tiny_llama

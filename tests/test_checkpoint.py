@@ -1,4 +1,4 @@
-"""Reading a llama-family checkpoint without transformers' model classes (`tui.llama_checkpoint`).
+"""Reading a llama-family checkpoint without transformers' model classes (`tui.model.llama_checkpoint`).
 
 Reference: transformers 5.24.0 building the same models (`LlamaForCausalLM`,
 `Qwen2ForCausalLM`, saved with `save_pretrained`): its `state_dict()`, its rotary
@@ -19,9 +19,9 @@ import pytest
 import torch
 from safetensors.torch import load_file, save_file
 
-from tui import lean_llama
-from tui.lean_llama import LeanRunner, shape_of_model
-from tui.llama_checkpoint import config_refusal, read_checkpoint, read_config
+from tui.model import lean_llama
+from tui.model.lean_llama import LeanRunner, shape_of_model
+from tui.model.llama_checkpoint import config_refusal, read_checkpoint, read_config
 
 try:
     from tiny_model import LAYERS_VOCAB, tiny_llama, tiny_qwen2
@@ -189,8 +189,8 @@ def test_tensor_sets_it_does_not_reproduce_are_refused(edit, reason, tmp_path):
 def test_reading_a_checkpoint_imports_no_transformers(tmp_path):
     folder = tmp_path / "model"
     tiny_llama().save_pretrained(folder)
-    code = ("import sys; from pathlib import Path; from tui.llama_checkpoint import read_checkpoint; "
-            "from tui.lean_llama import LeanRunner; "
+    code = ("import sys; from pathlib import Path; from tui.model.llama_checkpoint import read_checkpoint; "
+            "from tui.model.lean_llama import LeanRunner; "
             f"LeanRunner(read_checkpoint(Path({str(folder)!r}))).prefill([[1, 2, 3]]); "
             "print(sorted(m for m in sys.modules if m.split('.')[0] == 'transformers'))")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT)

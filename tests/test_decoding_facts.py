@@ -195,7 +195,7 @@ def test_no_repeat_ngram_worked_examples(n: int, banned: set[int]) -> None:
 
 def test_a_penalty_reads_the_whole_history_it_is_given() -> None:
     # transformers 5.24.0 (decoder-only) penalises over the whole context, prompt included;
-    # the engine passes the prompt and the pane's tokens as one history (tui/engine.py)
+    # the engine passes the prompt and the pane's tokens as one history (tui/session/engine.py)
     x = np.zeros(3)
     assert dist("presence_penalty=1", x, [2])[2] < dist("", x)[2]
 

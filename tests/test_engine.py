@@ -13,10 +13,10 @@ import numpy as np
 import pytest
 import torch
 
-from tui.engine import Engine, EngineError
-from tui.forward import Runner
-from tui.record import STOP_CONTEXT, STOP_EOS, STOP_LENGTH, STOP_STRING
-from tui.scenario import PaneSpec
+from tui.model.forward import Runner
+from tui.session.engine import Engine, EngineError
+from tui.session.record import STOP_CONTEXT, STOP_EOS, STOP_LENGTH, STOP_STRING
+from tui.session.scenario import PaneSpec
 
 PROMPT = "The lamplighter of Orrin Bay climbed the"
 
@@ -24,7 +24,7 @@ PROMPT = "The lamplighter of Orrin Bay climbed the"
 @pytest.fixture(scope="module", params=["generic", "lean"])
 def lm(request, tiny_model_dir):
     """The tiny model, once on each forward path (the engine must not care which)."""
-    from tui.models import load_model
+    from tui.model.catalogue import load_model
 
     loaded = load_model(str(tiny_model_dir))
     loaded.forward = request.param
@@ -32,7 +32,7 @@ def lm(request, tiny_model_dir):
 
 
 def runner_for(lm):
-    from tui.lean_llama import LeanRunner
+    from tui.model.lean_llama import LeanRunner
 
     return Runner(lm.model) if lm.forward == "generic" else LeanRunner(lm.model)
 

@@ -2,7 +2,7 @@
 
 Reference: transformers 5.24.0 `LlamaForCausalLM` / `Qwen2ForCausalLM`, `model(input_ids).logits`
 (one full forward with no cache: position t's logits depend on tokens 0..t only). The lean
-path (`tui.lean_llama.LeanRunner`) must give the same logits to 1e-4 at prefill, over
+path (`tui.model.lean_llama.LeanRunner`) must give the same logits to 1e-4 at prefill, over
 cached decode steps, in a batch, and after the engine's cache surgery (select/crop/join).
 """
 
@@ -11,15 +11,18 @@ from __future__ import annotations
 import pytest
 import torch
 
-from tui import lean_llama
 from tui.errors import UserError
-from tui.forward import FORWARD_ENV, KV, Runner, make_runner
-from tui.lean_llama import LeanRunner, lean_refusal
+from tui.model import lean_llama
+from tui.model.forward import FORWARD_ENV, Runner, make_runner
+from tui.model.kv import KV
+from tui.model.lean_llama import LeanRunner, lean_refusal
 
 try:
-    from tiny_model import LAYERS_VOCAB as VOCAB, tiny_llama, tiny_qwen2
+    from tiny_model import LAYERS_VOCAB as VOCAB
+    from tiny_model import tiny_llama, tiny_qwen2
 except ImportError:
-    from tests.tiny_model import LAYERS_VOCAB as VOCAB, tiny_llama, tiny_qwen2
+    from tests.tiny_model import LAYERS_VOCAB as VOCAB
+    from tests.tiny_model import tiny_llama, tiny_qwen2
 
 TOL = 1e-4  # the project's parity tolerance (issue 2), in logits
 
@@ -139,7 +142,7 @@ def test_select_crop_join_then_step_equals_recomputing():
 
 
 def test_stepping_a_crop_does_not_corrupt_the_longer_holder():
-    # The ownership rule (tui.forward.KV): a crop shares buffers; writing into it copies first.
+    # The ownership rule (tui.model.forward.KV): a crop shares buffers; writing into it copies first.
     model = tiny_llama()
     runner = LeanRunner(model)
     ids = random_ids(1, 12, seed=4)

@@ -13,10 +13,18 @@ import torch
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from tui.bootstrap import bootstrap_ci, bootstrap_ci_sets, resample_indices
-from tui.metrics import (
-    MEASURE_NAMES, DistinctN, SampleRecord, SelfBleu, distinct_n, mean_logprob,
-    measure_samples, perplexity, repeated_ngram_share, self_bleu,
+from tui.sweeps.bootstrap import bootstrap_ci, bootstrap_ci_sets, resample_indices
+from tui.sweeps.metrics import (
+    MEASURE_NAMES,
+    DistinctN,
+    SampleRecord,
+    SelfBleu,
+    distinct_n,
+    mean_logprob,
+    measure_samples,
+    perplexity,
+    repeated_ngram_share,
+    self_bleu,
 )
 
 WORDS = ["the", "keeper", "lit", "lamp", "at", "dusk", "wrote", "of", "ships", ",", ".",

@@ -23,9 +23,10 @@ from pathlib import Path
 import pytest
 import torch
 
-from tui import model_cache, model_sources
 from tui.errors import UserError
-from tui.models import (
+from tui.model import conversion_cache as model_cache
+from tui.model import sources as model_sources
+from tui.model.catalogue import (
     DEFAULT_MODEL,
     CatalogueEntry,
     load_model,
@@ -80,9 +81,9 @@ def test_packaged_catalogue_is_a_byte_copy_of_the_top_level_one():
 
 def test_catalogue_falls_back_to_the_packaged_copy(tmp_path: Path, monkeypatch: pytest.MonkeyPatch):
     package = tmp_path / "site" / "tui"
-    package.mkdir(parents=True)
+    (package / "model").mkdir(parents=True)
     (package / "models.txt").write_text("only  org/only  the packaged copy\n")
-    monkeypatch.setattr(model_sources, "__file__", str(package / "model_sources.py"))
+    monkeypatch.setattr(model_sources, "__file__", str(package / "model" / "sources.py"))
     assert model_sources.catalogue_path() == package / "models.txt"
     assert read_catalogue() == [CatalogueEntry("only", "org/only", "the packaged copy")]
 
@@ -350,7 +351,7 @@ def test_a_failed_conversion_leaves_no_cache_that_would_load(tiny_gguf: Path, mo
 
 
 def test_a_warm_start_reads_the_cache_directly_and_matches_transformers(tiny_gguf):
-    from tui.lean_llama import LeanRunner
+    from tui.model.lean_llama import LeanRunner
 
     cold = load_model(str(tiny_gguf))  # converts, then loads through transformers' Auto classes
     folder = resolve(str(tiny_gguf)).folder
@@ -382,7 +383,7 @@ def test_a_warm_start_reads_the_cache_directly_and_matches_transformers(tiny_ggu
 
 def test_a_warm_start_in_a_fresh_process_imports_no_model_classes(tiny_gguf):
     load_model(str(tiny_gguf))  # convert and record
-    code = ("import sys; from tui.models import load_model; "
+    code = ("import sys; from tui.model.catalogue import load_model; "
             f"lm = load_model({str(tiny_gguf)!r}); lm.runner().prefill([lm.encode_prompt('tea', None)]); "
             "print(lm.checkpoint is not None, sorted(m for m in sys.modules "
             "if m.startswith('transformers.models.') or m == 'transformers.modeling_utils'))")
@@ -418,7 +419,7 @@ def test_a_cache_the_direct_reader_refuses_still_loads_through_transformers(tiny
 
 
 def test_a_bad_loader_setting_is_one_clear_error(tiny_gguf, monkeypatch):
-    from tui.models import LOADER_ENV
+    from tui.model.catalogue import LOADER_ENV
 
     load_model(str(tiny_gguf))
     monkeypatch.setenv(LOADER_ENV, "fast")
@@ -429,8 +430,8 @@ def test_a_bad_loader_setting_is_one_clear_error(tiny_gguf, monkeypatch):
 
 
 def test_the_generic_path_and_bfloat16_are_honoured_on_warm_starts(tiny_gguf, monkeypatch):
-    from tui.forward import FORWARD_ENV, Runner
-    from tui.lean_llama import LeanRunner
+    from tui.model.forward import FORWARD_ENV, Runner
+    from tui.model.lean_llama import LeanRunner
 
     load_model(str(tiny_gguf))
     monkeypatch.setenv(FORWARD_ENV, "generic")
@@ -518,7 +519,7 @@ def test_the_models_command_marks_what_loads_offline(tiny_model_dir: Path, tmp_p
 
 
 def test_importing_the_model_modules_loads_no_torch():
-    code = "import sys, tui.models, tui.commands.models; print(sorted({'torch', 'transformers'} & set(sys.modules)))"
+    code = "import sys, tui.model.catalogue, tui.commands.models; print(sorted({'torch', 'transformers'} & set(sys.modules)))"
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True, cwd=ROOT)
     assert out.stdout.strip() == "[]"
 
@@ -557,7 +558,7 @@ def test_the_embedded_model_cache_is_bit_identical_to_transformers_gguf_load(mon
     assert lm.eos_ids == (eos,) and lm.max_context == context
 
     # a warm start reads the cache directly: the same tokens, ids and logits, bit for bit
-    from tui.lean_llama import LeanRunner
+    from tui.model.lean_llama import LeanRunner
 
     warm = load_model(DEFAULT_MODEL)
     assert warm.checkpoint is not None and warm.loaded_model is None

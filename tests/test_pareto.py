@@ -8,7 +8,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from tui.pareto import dominates, pareto_front
+from tui.sweeps.pareto import dominates, pareto_front
 
 NAN = math.nan
 

@@ -10,15 +10,15 @@ import warnings
 
 import pytest
 
-from tui.scenario import PaneSpec, find_scenario, load_scenario
-from tui.session import open_session
+from tui.session.opening import open_session
+from tui.session.scenario import PaneSpec, find_scenario, load_scenario
 
 pytestmark = pytest.mark.realmodel
 
 
 @pytest.fixture(scope="module")
 def lm():
-    from tui.models import DEFAULT_MODEL, load_model
+    from tui.model.catalogue import DEFAULT_MODEL, load_model
 
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")

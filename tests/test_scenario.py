@@ -9,7 +9,7 @@ from pathlib import Path
 import pytest
 
 from tui.errors import UserError
-from tui.scenario import find_scenario, load_scenario, scenarios_dir
+from tui.session.scenario import find_scenario, load_scenario, scenarios_dir
 
 GOOD = """
 title = "Test"

@@ -26,7 +26,7 @@ PROMPT = "The lighthouse keeper of Vellmar Quay"
 
 @pytest.fixture(scope="module")
 def lm(tiny_model_dir):
-    from tui.models import load_model
+    from tui.model.catalogue import load_model
 
     return load_model(str(tiny_model_dir))
 

@@ -22,8 +22,8 @@ import pytest
 
 from tui.cli import main as cli
 from tui.errors import UserError
-from tui.metrics import SampleRecord
-from tui.sweep_folder import SAMPLES, Manifest, SweepFolder, read_samples_file
+from tui.sweeps.folder import SAMPLES, Manifest, SweepFolder, read_samples_file
+from tui.sweeps.metrics import SampleRecord
 
 try:
     from sweep_files import write_sweep
@@ -36,7 +36,7 @@ RESAMPLES = "100"
 # between chunks; loaded by Python's `site` module at start-up (sitecustomize).
 SLOW_CHUNKS = """\
 import time
-import tui.sweep_folder as folder
+import tui.sweeps.folder as folder
 
 _append = folder.SweepFolder.append_chunk
 

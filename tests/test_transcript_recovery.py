@@ -20,16 +20,16 @@ from pathlib import Path
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-
 from transcript_fakes import record, run_cli
-from tui.engine import PaneView, SessionView
-from tui.record import STOP_EOS
-from tui.recovery import STATE_DIR_ENV, RecoveryLog, recovery_dir
-from tui.recovery_reader import list_recoveries, read_recovery
-from tui.scenario import PaneSpec, Scenario
-from tui.session import SessionInfo
-from tui.transcript import PaneHeader
-from tui.transcript_reader import StoredSession, TranscriptError
+
+from tui.session.engine import PaneView, SessionView
+from tui.session.opening import SessionInfo
+from tui.session.record import STOP_EOS
+from tui.session.scenario import PaneSpec, Scenario
+from tui.transcripts.headers import PaneHeader
+from tui.transcripts.reader import StoredSession, TranscriptError
+from tui.transcripts.recovery_log import STATE_DIR_ENV, RecoveryLog, recovery_dir
+from tui.transcripts.recovery_reader import list_recoveries, read_recovery
 
 REPO = Path(__file__).resolve().parents[1]
 INFO = SessionInfo(Scenario("Recovered tale", (PaneSpec("a", "greedy"),), prompt="Once"),
@@ -172,7 +172,7 @@ def test_any_sequence_of_changes_reads_back_as_the_final_session(tmp_path, ops, 
     recovered = read_recovery(path)
     _assert_same(recovered, s.view())
     out = tmp_path / "out.jsonl"  # and as a normal transcript, through the strict reader
-    from tui.transcript import write_atomic
+    from tui.transcripts.format import write_atomic
 
     write_atomic(out, recovered.transcript_lines())
     stored = StoredSession.open(out)
@@ -262,10 +262,10 @@ def test_a_transcript_is_refused_by_recover_and_a_log_by_report(tmp_path, monkey
 
 CHILD = r"""
 import json, sys
-from tui.models import load_model
-from tui.recovery import RecoveryLog
-from tui.scenario import parse_scenario
-from tui.session import open_session
+from tui.model.catalogue import load_model
+from tui.transcripts.recovery_log import RecoveryLog
+from tui.session.scenario import parse_scenario
+from tui.session.opening import open_session
 
 lm = load_model(sys.argv[1])
 sc = parse_scenario({"title": "Killed mid-run", "prompt": "The ferry bell rang", "seed": 4,

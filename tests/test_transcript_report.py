@@ -18,11 +18,12 @@ from pathlib import Path
 
 import numpy as np
 import pytest
-
 from transcript_fakes import run_cli, sample_header, write_sample
+
 from tui import token_style as ts
-from tui.report import gather, kind_of, write_report
-from tui.transcript_reader import StoredSession
+from tui.reports.gather import gather
+from tui.reports.report import kind_of, write_report
+from tui.transcripts.reader import StoredSession
 
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # ISO/IEC 15948 sec. 5.2
 

@@ -12,11 +12,11 @@ import json
 from pathlib import Path
 
 import pytest
-
 from transcript_fakes import run_cli
-from tui import transcript
-from tui.scenario import parse_scenario
-from tui.session import open_session
+
+from tui.session.opening import open_session
+from tui.session.scenario import parse_scenario
+from tui.transcripts import format as transcript
 
 
 def _session(lm, shared: bool, third_seed: int | None = 21):
@@ -32,7 +32,7 @@ def _session(lm, shared: bool, third_seed: int | None = 21):
 
 @pytest.fixture(scope="module")
 def lm(tiny_model_dir):
-    from tui.models import load_model
+    from tui.model.catalogue import load_model
 
     return load_model(str(tiny_model_dir))
 

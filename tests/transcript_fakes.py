@@ -11,8 +11,9 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
-from tui.record import STOP_LENGTH, StepRecord, TopToken
-from tui.transcript import PaneHeader, TranscriptHeader, transcript_lines, write_atomic
+from tui.session.record import STOP_LENGTH, StepRecord, TopToken
+from tui.transcripts.format import transcript_lines, write_atomic
+from tui.transcripts.headers import PaneHeader, TranscriptHeader
 
 TRANSCRIPT_COMMANDS = ("report", "rerun", "recover")
 
@@ -64,7 +65,6 @@ def write_objects(path: Path, objs: list[dict]) -> Path:
 def run_cli(argv: list[str], monkeypatch) -> int:
     """`logitfork ARGV` through the real router, with only the transcript commands."""
     from tui import cli
-
     monkeypatch.setattr(cli, "COMMANDS", {k: v for k, v in cli.COMMANDS.items()
                                           if k in TRANSCRIPT_COMMANDS})
     return cli.main(argv)

@@ -25,7 +25,7 @@ from tui.app.token_pane import TokenPane
 
 if TYPE_CHECKING:
     from tui.app.app import LogitforkApp
-    from tui.engine import Engine
+    from tui.session.engine import Engine
 
 CHANGES = frozenset({"run_pause", "one_step", "fork", "edit", "add_pane", "remove_pane",
                      "rewind", "toggle_draws", "reseed", "save"})
@@ -279,7 +279,7 @@ class SessionActions:
     @work(thread=True, exclusive=False, exit_on_error=False, group="save")
     def _write_transcript(self: "LogitforkApp", path: Path, view: Any, version: int,
                           then_quit: bool) -> None:
-        from tui.transcript import write_atomic
+        from tui.transcripts.format import write_atomic
 
         assert self.source is not None
         lines = self.source.transcript_lines(view)

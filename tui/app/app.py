@@ -29,16 +29,23 @@ from tui.app.legend import Legend
 from tui.app.loading_panel import LoadingPanel
 from tui.app.pane_grid import PaneGrid
 from tui.app.recovery_offer import RecoveryActions
-from tui.app.source import SessionLoader, SessionSource
-from tui.app.stepper import (STOPPED_ALL, Failed, OperationDone, RunChanged, Stepped, Stepper,
-                             StepperEvent)
 from tui.app.token_pane import TokenPane
 from tui.app.top_bar import BarState, TopBar
-from tui.views import SessionView
+from tui.session.views import SessionView
+from tui.workbench.source import SessionLoader, SessionSource
+from tui.workbench.stepper import (
+    STOPPED_ALL,
+    Failed,
+    OperationDone,
+    RunChanged,
+    Stepped,
+    Stepper,
+    StepperEvent,
+)
 
 if TYPE_CHECKING:
-    from tui.recovery import RecoveryLog
-    from tui.recovery_reader import RecoverySummary
+    from tui.transcripts.recovery_log import RecoveryLog
+    from tui.transcripts.recovery_reader import RecoverySummary
 
 REDRAW_SECONDS = 1 / 30  # the panes redraw at most this often, however fast steps come
 RATE_SMOOTHING = 0.3  # weight of the newest step in the steps-per-second average
@@ -179,7 +186,7 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
         try:
             source = loader.load(progress)
         except Exception as exc:  # noqa: BLE001 - any failure ends the app with one line
-            from tui.app.stepper import describe
+            from tui.workbench.stepper import describe
 
             self.post_message(self.LoadDone(None, describe(exc)))
             return
@@ -336,7 +343,7 @@ def make_app(scenario: str | None = None, *, model: str | None = None, seed: int
     """
     if source is not None:
         return LogitforkApp(source, mono=mono, save_folder=save_folder, recovery=recovery)
-    from tui.scenario import find_scenario, load_scenario
+    from tui.session.scenario import find_scenario, load_scenario
 
     loader = SessionLoader(load_scenario(find_scenario(scenario)), model=model, seed=seed,
                            dtype=dtype, allow_pickle=allow_pickle, max_new_tokens=max_new_tokens)

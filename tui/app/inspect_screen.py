@@ -31,12 +31,18 @@ from tui.app.colouring import FORCED_MARK, Scheme
 from tui.app.confirm_dialog import ConfirmDialog
 from tui.app.key_bar import KeyBar
 from tui.app.safe_text import shown_line, shown_token
-from tui.app.source import SessionSource
-from tui.app.step_analysis import (RecipeRow, TopRow, format_prob, recipe_at, recipe_rows,
-                                   top_rows)
-from tui.app.stepper import describe
 from tui.app.token_pane import pane_text, prompt_tail
-from tui.views import SessionView
+from tui.session.step_analysis import (
+    RecipeRow,
+    TopRow,
+    format_prob,
+    recipe_at,
+    recipe_rows,
+    top_rows,
+)
+from tui.session.views import SessionView
+from tui.workbench.source import SessionSource
+from tui.workbench.stepper import describe
 
 WIDE_COLUMNS = 110  # from this width on, the side panel sits beside the table
 RECIPES_LABEL = "this step under every recipe"
@@ -228,7 +234,7 @@ class InspectScreen(Screen[tuple[int, int, int] | None]):
         rows = top_rows(self.record)
         if history is None:
             return self.Analysed(rows, None, "needs the model (read-only session)")
-        from tui.app.approx_recipes import approx_recipe_rows, partial_logits
+        from tui.session.approx_recipes import approx_recipe_rows, partial_logits
 
         recipes = approx_recipe_rows(self.record, history, self.pane, self.view.panes)
         mass = partial_logits(self.record).stored_mass

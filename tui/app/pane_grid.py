@@ -10,7 +10,7 @@ from textual.containers import Container
 
 from tui.app.colouring import Scheme
 from tui.app.token_pane import TokenPane
-from tui.views import SessionView
+from tui.session.views import SessionView
 
 
 def grid_shape(n_panes: int) -> tuple[int, int]:

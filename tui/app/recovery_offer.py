@@ -1,7 +1,7 @@
 """Crash recovery in the app: the live session's recovery log, and the offer to reopen one.
 
 When the app is asked to keep one (`make_app(..., recovery=True)`, as `watch` does), a
-live session is followed by a `tui.recovery.RecoveryLog` in the user state folder:
+live session is followed by a `tui.transcripts.recovery_log.RecoveryLog` in the user state folder:
 begun on the engine's worker when the session starts, synced by the `Stepper` after
 every step and operation, closed when the app ends. It is deleted on a clean exit with
 nothing unsaved (saved, or no steps), kept otherwise.
@@ -19,11 +19,11 @@ from textual import work
 
 from tui.app.confirm_dialog import ConfirmDialog
 from tui.app.safe_text import shown_line
-from tui.app.source import LiveSource, SessionSource
+from tui.workbench.source import LiveSource, SessionSource
 
 if TYPE_CHECKING:
     from tui.app.app import LogitforkApp
-    from tui.recovery_reader import RecoverySummary
+    from tui.transcripts.recovery_reader import RecoverySummary
 
 REOPEN, KEEP, DISCARD = "r", "k", "d"
 
@@ -48,7 +48,7 @@ class RecoveryActions:
         """Choose the log's path now, so that the offer never shows this app's own log."""
         if self.keep_recovery and self.recovery is None and (
                 self._loader is not None or isinstance(self.source, LiveSource)):
-            from tui.recovery import RecoveryLog
+            from tui.transcripts.recovery_log import RecoveryLog
 
             self.recovery = RecoveryLog(None)
             self._scan_recoveries()
@@ -82,7 +82,7 @@ class RecoveryActions:
 
     @work(thread=True, exclusive=True, exit_on_error=False, group="recovery")
     def _scan_recoveries(self: "LogitforkApp") -> None:
-        from tui.recovery_reader import list_recoveries
+        from tui.transcripts.recovery_reader import list_recoveries
 
         own = self.recovery.path if self.recovery is not None else None
         found = [s for s in list_recoveries() if not s.running and s.problem is None
@@ -106,9 +106,9 @@ class RecoveryActions:
 
     @work(thread=True, exclusive=True, exit_on_error=False, group="recovery")
     def _reopen(self: "LogitforkApp", found: "RecoverySummary") -> None:
-        from tui.app.replay_source import recovered_source
         from tui.errors import UserError
-        from tui.recovery_reader import read_recovery
+        from tui.transcripts.recovery_reader import read_recovery
+        from tui.workbench.replay_source import recovered_source
 
         try:
             source = recovered_source(read_recovery(found.path, warn=lambda message: None))

@@ -19,8 +19,8 @@ from textual.widgets import Static
 
 from tui.app.colouring import FORCED_MARK, PROMPT_STYLE, Scheme
 from tui.app.safe_text import shown, shown_line
-from tui.views import PaneView, mean_logprob
-from tui.record import StepRecord
+from tui.session.record import StepRecord
+from tui.session.views import PaneView, mean_logprob
 
 PROMPT_TAIL_LINES = 2  # about this many lines of the prompt's end show above the text
 

@@ -17,8 +17,12 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def main(args: argparse.Namespace) -> int:
     from tui.errors import UserError
-    from tui.recovery import recovery_dir
-    from tui.recovery_reader import find_recovery, list_recoveries, read_recovery
+    from tui.transcripts.recovery_log import recovery_dir
+    from tui.transcripts.recovery_reader import (
+        find_recovery,
+        list_recoveries,
+        read_recovery,
+    )
 
     if args.log is None:
         if args.out or args.delete:
@@ -26,7 +30,7 @@ def main(args: argparse.Namespace) -> int:
         return _list(list_recoveries(), recovery_dir())
     if not args.out:
         raise UserError("--out: give the transcript file to write, e.g. --out session.jsonl")
-    from tui.transcript import write_atomic
+    from tui.transcripts.format import write_atomic
 
     path = find_recovery(args.log)
     rec = read_recovery(path)

@@ -21,8 +21,8 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 def main(args: argparse.Namespace) -> int:
     import sys
 
-    from tui.app.replay_source import replay_source
     from tui.commands.watch import wants_mono
+    from tui.workbench.replay_source import replay_source
 
     source = replay_source(args.transcript)  # bad files: one error line, before any screen
     from tui.app.app import make_app

@@ -16,15 +16,16 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def main(args: argparse.Namespace) -> int:
     from tui.errors import UserError
-    from tui.report import gather, kind_of, write_report
-    from tui.transcript_reader import StoredSession
+    from tui.reports.gather import gather
+    from tui.reports.report import kind_of, write_report
+    from tui.transcripts.reader import StoredSession
 
     out = args.out
     if out is not None and out != "-":
         kind_of(out)  # refuse a bad suffix before reading anything
     session = StoredSession.open(args.transcript)
     if out == "-":
-        from tui.report_md import render_md
+        from tui.reports.markdown import render_md
 
         for line in render_md(gather(session)):
             print(line)

@@ -20,13 +20,13 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def main(args: argparse.Namespace) -> int:
-    from tui.transcript_reader import StoredSession
+    from tui.transcripts.reader import StoredSession
 
     session = StoredSession.open(args.transcript)  # check the whole file before loading
     head = session.header
 
-    from tui.models import DTYPES, load_model
-    from tui.rerun import describe, rerun
+    from tui.model.catalogue import DTYPES, load_model
+    from tui.transcripts.rerun import describe, rerun
 
     name = args.model or head.model_name
     dtype = head.dtype if head.dtype in DTYPES else "float32"

@@ -24,7 +24,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def main(args: argparse.Namespace) -> int:
     from tui.errors import UserError
-    from tui.scenario import find_scenario, load_scenario
+    from tui.session.scenario import find_scenario, load_scenario
 
     scenario = load_scenario(find_scenario(args.scenario))  # check the file before loading
     if args.steps is not None and args.steps < 1:
@@ -32,10 +32,9 @@ def main(args: argparse.Namespace) -> int:
     if args.seed is not None and args.seed < 0:
         raise UserError(f"--seed: must be >= 0, got {args.seed}")
 
-    from tui.models import DEFAULT_MODEL, load_model
-    from tui.session import open_session
-    from tui import transcript
-
+    from tui.model.catalogue import DEFAULT_MODEL, load_model
+    from tui.session.opening import open_session
+    from tui.transcripts import format as transcript
     model_name = args.model or scenario.model or DEFAULT_MODEL
     lm = load_model(model_name, dtype=args.dtype, allow_pickle=args.allow_pickle)
     engine, info = open_session(lm, scenario, seed=args.seed)

@@ -31,10 +31,15 @@ def main(args: argparse.Namespace) -> int:
     from pathlib import Path
 
     from tui.errors import UserError
-    from tui.sweep_folder import SweepFolder, package_versions, shard_text
-    from tui.sweep_plan import (build_job, default_folder, make_manifest, parse_shard,
-                                resolve_prompts)
-    from tui.sweep_spec import load_sweep
+    from tui.sweeps.folder import SweepFolder, package_versions, shard_text
+    from tui.sweeps.plan import (
+        build_job,
+        default_folder,
+        make_manifest,
+        parse_shard,
+        resolve_prompts,
+    )
+    from tui.sweeps.spec import load_sweep
 
     spec = load_sweep(args.sweep)
     shard = parse_shard(args.shard)
@@ -45,9 +50,9 @@ def main(args: argparse.Namespace) -> int:
     out = Path(args.out) if args.out else default_folder(spec, shard)
     SweepFolder.check_existing(out, manifest)  # refuse a wrong folder before loading anything
 
-    from tui.models import load_model
-    from tui.sweep_progress import SweepProgress
-    from tui.sweep_runner import SweepRunner
+    from tui.model.catalogue import load_model
+    from tui.sweeps.progress import SweepProgress
+    from tui.sweeps.runner import SweepRunner
 
     lm = load_model(spec.model, allow_pickle=args.allow_pickle)
     job = build_job(spec, prompts, lm)
@@ -78,7 +83,7 @@ def main(args: argparse.Namespace) -> int:
               "with: logitfork sweep-merge DIR...", file=sys.stderr)
         return 0
 
-    from tui.sweep_report import report_folder
+    from tui.sweeps.report import report_folder
 
     report_folder(folder, sys.stdout, n_resamples=args.resamples)
     print(f"results: {out / 'results.csv'}, {out / 'results.md'}, {out / 'front.png'}",

@@ -24,8 +24,8 @@ def main(args: argparse.Namespace) -> int:
     from pathlib import Path
 
     from tui.errors import UserError
-    from tui.sweep_folder import merge_folders, read_manifest
-    from tui.sweep_plan import DEFAULT_ROOT
+    from tui.sweeps.folder import merge_folders, read_manifest
+    from tui.sweeps.plan import DEFAULT_ROOT
 
     if args.resamples < 1:
         raise UserError(f"--resamples: must be at least 1, got {args.resamples}")
@@ -42,7 +42,7 @@ def main(args: argparse.Namespace) -> int:
     print(f"merged {len(sources)} folder(s), {len(folder.done)} chunks, into {out}",
           file=sys.stderr)
 
-    from tui.sweep_report import report_folder
+    from tui.sweeps.report import report_folder
 
     report_folder(folder, sys.stdout, n_resamples=args.resamples)
     return 0

@@ -37,7 +37,12 @@ from transformers import (
 )
 
 from tui.decoding.mirostat import MirostatV2
-from tui.decoding.penalties import FrequencyPenalty, NoRepeatNGram, PresencePenalty, RepetitionPenalty
+from tui.decoding.penalties import (
+    FrequencyPenalty,
+    NoRepeatNGram,
+    PresencePenalty,
+    RepetitionPenalty,
+)
 from tui.decoding.scaling import Greedy, Temperature
 from tui.decoding.stage import Candidates, History, Stage, StatefulStage
 from tui.decoding.truncation import Epsilon, Eta, MinP, TopK, TopP, TypicalP

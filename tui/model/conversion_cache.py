@@ -1,0 +1,325 @@
+"""The GGUF conversion cache: de-quantise a GGUF once, load safetensors ever after.
+
+Reading a GGUF through transformers de-quantises every tensor and rebuilds the
+tokenizer from metadata, which takes tens of seconds. The first load therefore writes
+a plain folder (safetensors weights, config, generation config, tokenizer files) to
+``<cache root>/models/<first 16 hex of the file's sha256>/``; later loads read that
+folder like any `save_pretrained` output.
+
+The folder is built under a temporary name in the same directory and moved into place
+with one `os.replace`, and a marker file is written last inside it, so a crash or an
+error midway never leaves a folder that a later start would take for complete.
+
+A load through transformers then adds ``logitfork-direct.json`` (`DirectRecord`): the
+tokenizer class transformers chose, so that warm starts can skip its model classes.
+
+The cache root is ``platformdirs.user_cache_dir("logitfork")``, or the folder named by
+the environment variable ``LOGITFORK_CACHE_DIR``. Heavy imports stay inside functions.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import importlib.metadata
+import json
+import os
+import re
+import shutil
+import sys
+import tempfile
+import time
+from contextlib import contextmanager, suppress
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Callable, Iterator, TextIO
+
+from tui.errors import UserError
+
+Progress = Callable[[str, float], None]
+
+CACHE_ENV = "LOGITFORK_CACHE_DIR"
+CACHE_FORMAT = 1  # bump when the folder layout changes; older folders are rebuilt
+MARKER = "logitfork-cache.json"  # written last: a folder without it is not a cache
+WEIGHTS = "model.safetensors"
+STALE_TEMP_SECONDS = 6 * 3600  # temp folders older than this are debris of a killed run
+DIRECT = "logitfork-direct.json"  # how transformers loaded the folder: lets warm starts skip it
+DIRECT_FORMAT = 1
+_IDENTIFIER = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
+
+
+def cache_root() -> Path:
+    """Where logitfork keeps converted models: `LOGITFORK_CACHE_DIR` or the user cache dir."""
+    override = os.environ.get(CACHE_ENV)
+    if override:
+        return Path(override).expanduser()
+    import platformdirs
+
+    return Path(platformdirs.user_cache_dir("logitfork"))
+
+
+def models_dir() -> Path:
+    """The folder holding one sub-folder per converted GGUF file."""
+    return cache_root() / "models"
+
+
+def file_digest(path: Path) -> str:
+    """First 16 hex digits of the file's sha256: the cache key.
+
+    Not remembered between runs: hashing the 98 MB embedded GGUF takes 0.07 s with the
+    file in the page cache and 0.23 s cold on the 2-core machine (measured), under the
+    0.3 s that would make a path+size+mtime memo worth its staleness risk.
+    """
+    with open(path, "rb") as handle:
+        return hashlib.file_digest(handle, "sha256").hexdigest()[:16]
+
+
+def cache_folder(digest: str) -> Path:
+    """The cache folder for a GGUF file with this digest (it may not exist yet)."""
+    return models_dir() / digest
+
+
+def is_ready(folder: Path) -> bool:
+    """True when `folder` is a complete conversion in the current cache format."""
+    try:
+        marker = json.loads((folder / MARKER).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return False
+    return (
+        isinstance(marker, dict)
+        and marker.get("format") == CACHE_FORMAT
+        and (folder / WEIGHTS).is_file()
+        and (folder / "config.json").is_file()
+    )
+
+
+@dataclass(frozen=True)
+class DirectRecord:
+    """Which tokenizer class transformers' `AutoTokenizer` chose for a cache folder.
+
+    Choosing it needs the model's config class, whose import is most of a warm start;
+    a load through transformers writes this record, and later loads build the tokenizer
+    class named here and read the weights without transformers' model classes
+    (`tui.model.llama_checkpoint`). It holds for the transformers version that wrote it.
+    """
+
+    tokenizer_module: str  # e.g. transformers.tokenization_utils_tokenizers
+    tokenizer_class: str  # e.g. TokenizersBackend
+
+
+def read_direct_record(folder: Path) -> DirectRecord | None:
+    """The folder's record if this transformers version wrote it and it names a
+    transformers class; otherwise None (the folder then loads through transformers)."""
+    try:
+        record = json.loads((folder / DIRECT).read_text(encoding="utf-8"))
+        version = importlib.metadata.version("transformers")
+    except (OSError, ValueError, importlib.metadata.PackageNotFoundError):
+        return None
+    if not isinstance(record, dict) or record.get("format") != DIRECT_FORMAT:
+        return None
+    module, name = record.get("tokenizer_module"), record.get("tokenizer_class")
+    if record.get("transformers") != version or not isinstance(module, str) or not isinstance(name, str):
+        return None
+    parts = module.split(".")
+    if parts[0] != "transformers" or not all(_IDENTIFIER.fullmatch(p) for p in parts + [name]):
+        return None  # never import a module a file names unless it is transformers' own
+    return DirectRecord(module, name)
+
+
+def write_direct_record(folder: Path, tokenizer: Any) -> None:
+    """Record `tokenizer`'s class for `folder`, atomically; a read-only cache just goes without."""
+    import transformers
+
+    record = {"format": DIRECT_FORMAT, "transformers": transformers.__version__,
+              "tokenizer_module": type(tokenizer).__module__, "tokenizer_class": type(tokenizer).__name__}
+    temp = folder / f".{DIRECT}.{os.getpid()}.tmp"
+    try:
+        temp.write_text(json.dumps(record, indent=2) + "\n", encoding="utf-8")
+        os.replace(temp, folder / DIRECT)
+    except OSError:
+        with suppress(OSError):
+            temp.unlink(missing_ok=True)
+
+
+def convert_gguf(gguf_file: Path, folder: Path, progress: Progress) -> None:
+    """De-quantise `gguf_file` through transformers and publish the result as `folder`.
+
+    `progress(stage, fraction)` hears about each stage, fraction rising to 1.0.
+    On any failure the temporary folder is removed and `folder` is left untouched.
+    """
+    parent = folder.parent
+    try:
+        parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise UserError(
+            f"model cache {parent}: cannot create it ({exc.strerror}); set {CACHE_ENV} to a writable folder"
+        ) from None
+    _remove_stale_temps(parent)
+    temp = Path(tempfile.mkdtemp(prefix=f".tmp-{folder.name}-", dir=parent))
+    try:
+        write_conversion(gguf_file, temp, progress)
+        _publish(temp, folder)
+    finally:
+        shutil.rmtree(temp, ignore_errors=True)
+
+
+def read_gguf(gguf_file: Path, progress: Progress) -> tuple[Any, Any]:
+    """(model, tokenizer) read by transformers' own GGUF loader, in float32."""
+    import torch
+    from transformers import AutoModelForCausalLM, AutoTokenizer
+
+    common = {"gguf_file": gguf_file.name, "local_files_only": True, "trust_remote_code": False}
+    progress("rebuilding the tokenizer from GGUF metadata", 0.02)
+    tokenizer = AutoTokenizer.from_pretrained(str(gguf_file.parent), **common)
+    progress("de-quantising weights", 0.25)
+    with _tensor_progress(lambda done: progress("de-quantising weights", 0.25 + 0.6 * done)):
+        model = AutoModelForCausalLM.from_pretrained(str(gguf_file.parent), dtype=torch.float32, **common)
+    return model, tokenizer
+
+
+def write_conversion(gguf_file: Path, folder: Path, progress: Progress) -> None:
+    """Write the converted model into the (empty, temporary) `folder`; marker last."""
+    import transformers
+    from safetensors.torch import save_file
+
+    with quiet_transformers():
+        model, tokenizer = read_gguf(gguf_file, progress)
+        progress("writing the cache", 0.87)
+        save_file(unaliased_state_dict(model), str(folder / WEIGHTS), metadata={"format": "pt"})
+        config = model.config
+        if hasattr(config, "quantization_config"):
+            del config.quantization_config  # the weights are plain float32 now
+        config.architectures = [type(model).__name__]
+        config.save_pretrained(folder)
+        model.generation_config.save_pretrained(folder)
+        tokenizer.save_pretrained(folder)
+    marker = {
+        "format": CACHE_FORMAT,
+        "source": str(gguf_file),
+        "converted_by": f"transformers {transformers.__version__}",
+        "created": time.strftime("%Y-%m-%dT%H:%M:%S"),
+    }
+    (folder / MARKER).write_text(json.dumps(marker, indent=2) + "\n", encoding="utf-8")
+    _sync_to_disk(folder)
+    progress("cache written", 1.0)
+
+
+def unaliased_state_dict(model: Any) -> dict[str, Any]:
+    """The state dict with every tensor that shares memory with an earlier one dropped.
+
+    For a tied model this drops `lm_head.weight` (it is the embedding matrix);
+    `tie_word_embeddings` in the config restores it on load. safetensors refuses
+    aliased tensors, and writing the matrix twice would cost 113 MB for nothing.
+    """
+    seen: set[tuple[int, int]] = set()
+    kept: dict[str, Any] = {}
+    for name, tensor in model.state_dict().items():
+        key = (tensor.untyped_storage().data_ptr(), tensor.storage_offset())
+        if key in seen:
+            continue
+        seen.add(key)
+        kept[name] = tensor.detach().contiguous()
+    return kept
+
+
+def _sync_to_disk(folder: Path) -> None:
+    """fsync every file and the folder, so a power cut after the rename finds whole files."""
+    for path in [*folder.iterdir(), folder]:
+        fd = os.open(path, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+
+
+def _publish(temp: Path, folder: Path) -> None:
+    """Move the finished `temp` folder to `folder` in one rename."""
+    if folder.exists() and not is_ready(folder):  # an older format, or not ours
+        trash = Path(tempfile.mkdtemp(prefix=f".old-{folder.name}-", dir=folder.parent))
+        os.replace(folder, trash / "old")
+        shutil.rmtree(trash, ignore_errors=True)
+    try:
+        os.replace(temp, folder)
+    except OSError:
+        if not is_ready(folder):  # not a race lost to another process converting the same file
+            raise
+
+
+def _remove_stale_temps(parent: Path) -> None:
+    """Delete temporary folders left by runs killed mid-conversion (older than 6 hours)."""
+    now = time.time()
+    for entry in parent.glob(".tmp-*"):
+        try:
+            if entry.is_dir() and now - entry.stat().st_mtime > STALE_TEMP_SECONDS:
+                shutil.rmtree(entry, ignore_errors=True)
+        except OSError:
+            pass
+
+
+@contextmanager
+def _tensor_progress(report: Callable[[float], None]) -> Iterator[None]:
+    """Report per-tensor progress of transformers' GGUF de-quantisation loop.
+
+    That loop iterates through `tqdm`, looked up in its module; swapping in a counting
+    generator while the load runs gives fractions without tqdm's own bar. If the seam
+    moves in another transformers version, the load still works, just without steps.
+    """
+    try:
+        from transformers import modeling_gguf_pytorch_utils as gguf_utils
+    except ImportError:
+        yield
+        return
+    original = getattr(gguf_utils, "tqdm", None)
+    if original is None:
+        yield
+        return
+
+    def counting(iterable: Any, *args: Any, **kwargs: Any) -> Iterator[Any]:
+        items = list(iterable)
+        for index, item in enumerate(items):
+            yield item
+            report((index + 1) / max(len(items), 1))
+
+    gguf_utils.tqdm = counting
+    try:
+        yield
+    finally:
+        gguf_utils.tqdm = original
+
+
+@contextmanager
+def quiet_transformers() -> Iterator[None]:
+    """Silence transformers' progress bars and info/warning logs for the duration."""
+    from transformers.utils import logging as hf_logging
+
+    bars, level = hf_logging.is_progress_bar_enabled(), hf_logging.get_verbosity()
+    hf_logging.disable_progress_bar()
+    hf_logging.set_verbosity_error()
+    try:
+        yield
+    finally:
+        hf_logging.set_verbosity(level)
+        if bars:
+            hf_logging.enable_progress_bar()
+
+
+class TextProgressBar:
+    """A one-line text bar, redrawn in place with carriage returns: ``title [####....]  40%  stage``."""
+
+    def __init__(self, title: str, stream: TextIO | None = None, width: int = 28) -> None:
+        self.title = title
+        self.stream = stream if stream is not None else sys.stderr
+        self.width = width
+        self._last: tuple[str, int] | None = None
+
+    def __call__(self, stage: str, fraction: float) -> None:
+        fraction = min(max(fraction, 0.0), 1.0)
+        percent = int(fraction * 100)
+        if (stage, percent) == self._last:
+            return
+        self._last = (stage, percent)
+        filled = int(fraction * self.width)
+        bar = "#" * filled + "." * (self.width - filled)
+        self.stream.write(f"\r{self.title} [{bar}] {percent:3d}%  {stage:<44}")
+        if fraction >= 1.0:
+            self.stream.write("\n")
+        self.stream.flush()

@@ -1,0 +1,165 @@
+"""What a report of one transcript shows, gathered once, and the formatting both renderings share.
+
+`gather(session)` reads the transcript once (streaming) and keeps, per record, only the
+few numbers a report shows. `plots_png(report)` draws entropy, kept-set size and the
+chosen token's probability over the steps, one line per pane, with matplotlib's Agg
+backend.
+"""
+
+from __future__ import annotations
+
+import io
+import math
+from dataclasses import dataclass
+from pathlib import Path
+
+from tui.transcripts.headers import PaneHeader, TranscriptHeader
+from tui.transcripts.reader import StoredSession
+
+# Okabe & Ito 2008 colours for the panes' plot lines, then line styles to tell 8 apart.
+PANE_COLOURS = ("#0072B2", "#E69F00", "#CC79A7", "#009E73", "#D55E00", "#56B4E9",
+                "#000000", "#F0E442")
+PANE_DASHES = ("-", "--", "-.", ":")
+
+
+@dataclass(frozen=True)
+class Row:
+    """The part of one record a report shows."""
+
+    step: int
+    token_id: int
+    text: str
+    rank: int
+    raw_prob: float
+    final_prob: float
+    kept: int
+    raw_entropy: float
+    final_entropy: float
+    forced: bool
+    stop: str | None
+
+
+@dataclass(frozen=True)
+class PaneReport:
+    header: PaneHeader
+    colour: str  # its plot line's colour
+    rows: tuple[Row, ...]
+
+    @property
+    def text(self) -> str:
+        return "".join(r.text for r in self.rows)
+
+    @property
+    def mean_logprob(self) -> float:
+        lps = [math.log(r.raw_prob) if r.raw_prob > 0 else -math.inf for r in self.rows]
+        return sum(lps) / len(lps) if lps else math.nan
+
+    @property
+    def perplexity(self) -> float:
+        lp = self.mean_logprob
+        return math.exp(-lp) if math.isfinite(lp) else math.inf if self.rows else math.nan
+
+    def mean(self, field: str) -> float:
+        vals = [float(getattr(r, field)) for r in self.rows]
+        return sum(vals) / len(vals) if vals else math.nan
+
+    @property
+    def forced(self) -> int:
+        return sum(r.forced for r in self.rows)
+
+
+@dataclass(frozen=True)
+class Report:
+    source: Path
+    header: TranscriptHeader
+    panes: tuple[PaneReport, ...]
+    steps: int
+
+    def at(self, step: int) -> list[Row | None]:
+        """Each pane's row at a step (None where it had stopped)."""
+        return [p.rows[step] if step < len(p.rows) else None for p in self.panes]
+
+
+def gather(session: StoredSession) -> Report:
+    """One streaming pass over the transcript."""
+    rows: dict[int, list[Row]] = {p.id: [] for p in session.panes}
+    for r in session.iter_records():
+        rows[r.pane].append(Row(r.step, r.token_id, r.text, r.rank, r.raw_prob, r.final_prob,
+                                r.kept, r.raw_entropy, r.final_entropy, r.forced, r.stop))
+    panes = tuple(PaneReport(p, PANE_COLOURS[i % len(PANE_COLOURS)], tuple(rows[p.id]))
+                  for i, p in enumerate(session.panes))
+    return Report(session.path, session.header, panes, session.steps)
+
+
+def plots_png(report: Report, dpi: int = 96) -> bytes:
+    """Entropy, kept-set size and chosen-token probability over the steps, as a PNG."""
+    import matplotlib
+
+    matplotlib.use("Agg", force=True)
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(10, 7.5), dpi=dpi, layout="constrained")
+    axes = fig.subplots(3, 1, sharex=True)
+    panels = (("final_entropy", "entropy of the final\ndistribution (nats)", False),
+              ("kept", "kept-set size\n(tokens, log scale)", True),
+              ("raw_prob", "chosen token's\nprobability (raw model)", False))
+    for i, pane in enumerate(report.panes):
+        steps = [r.step for r in pane.rows]
+        for ax, (field, _, _) in zip(axes, panels):
+            ax.plot(steps, [getattr(r, field) for r in pane.rows], color=pane.colour,
+                    linestyle=PANE_DASHES[(i // len(PANE_COLOURS) + i) % len(PANE_DASHES)],
+                    linewidth=1.4, label=f"{pane.header.name}")
+    for ax, (_, label, log) in zip(axes, panels):
+        ax.set_ylabel(label, fontsize=9)
+        ax.grid(True, alpha=0.3)
+        if log:
+            ax.set_yscale("log")
+    axes[2].set_ylim(-0.02, 1.02)
+    axes[2].set_xlabel("step")
+    axes[0].legend(loc="upper right", fontsize=8, ncol=min(4, max(1, len(report.panes))))
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png")
+    return buf.getvalue()
+
+
+# ----- small text helpers both renderers use ------------------------------------------------
+
+def visible(text: str) -> str:
+    """Control characters as their Unicode control pictures (U+2400 block)."""
+    out = []
+    for ch in text:
+        code = ord(ch)
+        if ch in "\n\t":
+            out.append(ch)
+        elif code < 0x20:
+            out.append(chr(0x2400 + code))
+        elif code == 0x7F:
+            out.append("\u2421")
+        elif 0x80 <= code < 0xA0:
+            out.append(f"\\x{code:02x}")
+        else:
+            out.append(ch)
+    return "".join(out)
+
+
+def token_cell(text: str) -> str:
+    """A token shown alone: spaces as open boxes, newlines and tabs as arrows."""
+    return visible(text).replace(" ", "\u2423").replace("\n", "\u21b5").replace("\t", "\u21e5")
+
+
+def fmt(v: float, digits: int = 3) -> str:
+    if isinstance(v, float) and not math.isfinite(v):
+        return "n/a" if math.isnan(v) else ("inf" if v > 0 else "-inf")
+    return f"{v:.{digits}f}"
+
+
+def origin_text(pane: PaneHeader, report: Report) -> str:
+    if pane.origin is None:
+        return "from the prompt"
+    src = next((p.header.name for p in report.panes if p.header.id == pane.origin[0]),
+               "since removed")
+    return f"forked from pane {pane.origin[0]} ({src}) at step {pane.origin[1]}"
+
+
+def recipe_changes(pane: PaneHeader) -> list[str]:
+    return [f"from step {s}: {r}" for s, r in pane.recipe_log]

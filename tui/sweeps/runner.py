@@ -1,0 +1,223 @@
+"""Running a sweep through the model: many (recipe, sample) rows per forward pass.
+
+For each prompt the rows are every (recipe, sample) pair, recipe by recipe; they run
+in chunks of `chunk_rows` rows, and a chunk never spans two prompts. The prompt is
+prefilled once and its cache copied into every row of a chunk. Within a chunk the
+rows decode in lockstep, as the engine's panes do: every live row holds the same
+number of tokens, so no padding is needed, and a row that has ended leaves the batch.
+Memory is bounded by one chunk: its cache rows and one (rows, V) block of logits.
+
+Draws are inverse-CDF draws (`tui.decoding.draw`). The uniform number of a row at
+step t is the t-th number of a PCG64 stream seeded by numpy's SeedSequence from
+(seed, prompt index, recipe text, sample index): a pure function of those and t, so
+the samples do not depend on the chunking, on which chunks ran before, or on the
+order in which an interrupted sweep is resumed.
+
+No rich, no Textual: the terminal table lives in `tui.sweeps.report`.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from dataclasses import dataclass, field
+from typing import Callable, Protocol, Sequence
+
+import numpy as np
+import torch
+
+from tui.decoding import Recipe, Sampler, draw
+from tui.model.kv import KV
+from tui.session.record import (
+    STOP_CONTEXT,
+    STOP_EOS,
+    STOP_LENGTH,
+    STOP_STRING,
+    IncrementalDecoder,
+)
+from tui.sweeps.metrics import SampleRecord
+from tui.sweeps.spec import DEFAULT_CHUNK_ROWS
+
+DecodeFn = Callable[[Sequence[int]], str]
+StepHook = Callable[[int, int], None]  # (rows that emitted a token, rows that ended this step)
+
+
+class ForwardRunner(Protocol):
+    """What the sweep needs of a forward path (`LoadedModel.runner()` gives one)."""
+
+    def prefill(self, ids: Sequence[Sequence[int]]) -> tuple[KV, torch.Tensor]: ...
+
+    def step(self, kv: KV, tokens: Sequence[int]) -> tuple[KV, torch.Tensor]: ...
+
+
+@dataclass(frozen=True)
+class Chunk:
+    """One unit of work and of output: rows of one prompt that share forward passes."""
+
+    index: int  # position among all chunks of the sweep, from 0
+    prompt_index: int
+    rows: tuple[tuple[int, int], ...]  # (recipe index, sample index), in row order
+
+
+@dataclass(frozen=True)
+class SweepJob:
+    """A sweep resolved for one model: encoded prompts and canonical recipe texts."""
+
+    prompt_ids: tuple[tuple[int, ...], ...]
+    recipes: tuple[str, ...]
+    samples: int
+    max_new_tokens: int
+    seed: int = 0
+    chunk_rows: int = DEFAULT_CHUNK_ROWS
+    stop: tuple[str, ...] = ()
+
+    def __post_init__(self) -> None:
+        if not self.prompt_ids or any(not p for p in self.prompt_ids):
+            raise ValueError("sweep job: every prompt needs at least one token")
+        if not self.recipes:
+            raise ValueError("sweep job: no recipe")
+        for name in ("samples", "max_new_tokens", "chunk_rows"):
+            value = getattr(self, name)
+            if isinstance(value, bool) or not isinstance(value, int) or value < 1:
+                raise ValueError(f"sweep job: {name} must be an integer >= 1, got {value!r}")
+
+    def chunks(self) -> list[Chunk]:
+        """Every chunk of the sweep, prompt by prompt; indices count from 0."""
+        out: list[Chunk] = []
+        pairs = [(r, s) for r in range(len(self.recipes)) for s in range(self.samples)]
+        for p in range(len(self.prompt_ids)):
+            for start in range(0, len(pairs), self.chunk_rows):
+                out.append(Chunk(len(out), p, tuple(pairs[start:start + self.chunk_rows])))
+        return out
+
+
+def recipe_key(recipe: str) -> int:
+    """A 64-bit integer naming a recipe text in the seed (sha256 of its UTF-8, first 8 bytes)."""
+    return int.from_bytes(hashlib.sha256(recipe.encode("utf-8")).digest()[:8], "big")
+
+
+def row_uniforms(seed: int, prompt_index: int, recipe: str, sample_index: int,
+                 steps: int) -> np.ndarray:
+    """The uniform numbers in [0, 1) a row draws with at steps 0..steps-1.
+
+    Entry t does not depend on `steps` (a longer request extends the same stream).
+    """
+    seq = np.random.SeedSequence(entropy=seed,
+                                 spawn_key=(prompt_index, recipe_key(recipe), sample_index))
+    return np.random.Generator(np.random.PCG64(seq)).random(steps)
+
+
+@dataclass(eq=False)
+class _Row:
+    """One sample being written (mutable, owned by `SweepRunner.run_chunk`)."""
+
+    recipe: str
+    sample_index: int
+    sampler: Sampler
+    uniforms: np.ndarray
+    decoder: IncrementalDecoder
+    tokens: list[int] = field(default_factory=list)
+    logprobs: list[float] = field(default_factory=list)
+    kept: list[int] = field(default_factory=list)
+    entropies: list[float] = field(default_factory=list)
+    tail: str = ""  # the last characters written, enough to find a stop string
+    ending: str | None = None
+
+
+class SweepRunner:
+    """Decodes a `SweepJob`'s chunks with one batched forward pass per step."""
+
+    def __init__(self, runner: ForwardRunner, decode: DecodeFn, job: SweepJob, *,
+                 eos_ids: Sequence[int], max_context: int) -> None:
+        for p, ids in enumerate(job.prompt_ids):
+            if len(ids) >= max_context:
+                raise ValueError(f"prompt {p + 1} has {len(ids)} tokens; the model's context "
+                                 f"holds {max_context}")
+        self.runner = runner
+        self.job = job
+        self._decode = decode
+        self._eos = frozenset(int(e) for e in eos_ids)
+        self._max_context = max_context
+        self._recipes = [Recipe.parse(r) for r in job.recipes]
+        self._stop_span = max((len(s) for s in job.stop), default=0)
+        self._prefilled: tuple[int, KV, torch.Tensor] | None = None  # the last prompt's
+
+    def prompt_state(self, prompt_index: int) -> tuple[KV, torch.Tensor]:
+        """The prompt's cache (1 row) and next-token logits (V,), prefilled once."""
+        if self._prefilled is None or self._prefilled[0] != prompt_index:
+            kv, logits = self.runner.prefill([self.job.prompt_ids[prompt_index]])
+            self._prefilled = (prompt_index, kv, logits[0])
+        return self._prefilled[1], self._prefilled[2]
+
+    def run_chunk(self, chunk: Chunk, on_step: StepHook | None = None) -> list[SampleRecord]:
+        """Write every row of `chunk` to its end; records in the chunk's row order."""
+        job = self.job
+        prompt = job.prompt_ids[chunk.prompt_index]
+        rows = [_Row(job.recipes[r], s, self._recipes[r].sampler(),
+                     row_uniforms(job.seed, chunk.prompt_index, job.recipes[r], s,
+                                  job.max_new_tokens),
+                     IncrementalDecoder(self._decode, prompt))
+                for r, s in chunk.rows]
+        prompt_kv, prompt_logits = self.prompt_state(chunk.prompt_index)
+        live = list(range(len(rows)))  # indices into `rows`, in batch-row order
+        kv = prompt_kv.select([0] * len(rows))
+        logits = prompt_logits.unsqueeze(0).expand(len(rows), -1)  # (B, V)
+        step = 0
+        while live:
+            logp = torch.log_softmax(logits.double(), dim=-1).numpy()  # (B, V) raw model
+            logits_np = logits.float().numpy()
+            tokens = [self._emit(rows[i], step, prompt, logits_np[b], logp[b])
+                      for b, i in enumerate(live)]
+            keep = [b for b, i in enumerate(live) if rows[i].ending is None]
+            if on_step is not None:
+                on_step(len(live), len(live) - len(keep))
+            if not keep:
+                break
+            if len(keep) < len(live):
+                kv = kv.select(keep)
+                live = [live[b] for b in keep]
+                tokens = [tokens[b] for b in keep]
+            kv, logits = self.runner.step(kv, tokens)
+            step += 1
+        return [self._record(row, chunk.prompt_index, prompt) for row in rows]
+
+    def _emit(self, row: _Row, step: int, prompt: tuple[int, ...], logits: np.ndarray,
+              logp: np.ndarray) -> int:
+        """Draw one token for a row and note what the sample needs; returns the token."""
+        final = row.sampler.distribution(logits, prompt + tuple(row.tokens))
+        token = draw(final, float(row.uniforms[step]))
+        row.sampler.observe(token, final)
+        nz = final[final > 0]
+        row.tokens.append(token)
+        row.logprobs.append(float(logp[token]))
+        row.kept.append(int(nz.size))
+        nats = -float((nz * np.log(nz)).sum())
+        row.entropies.append(nats if nats > 0 else 0.0)  # one-hot: +0.0, not -0.0
+        if self._stop_span:  # the text matters only for stop strings (the sample's is made once)
+            text = row.tail + row.decoder.push(token)
+            row.tail = text[-self._stop_span:]
+        if token in self._eos:
+            row.ending = STOP_EOS
+        elif self._stop_span and any(s in text for s in self.job.stop):
+            row.ending = STOP_STRING
+        elif step + 1 >= self.job.max_new_tokens:
+            row.ending = STOP_LENGTH
+        elif len(prompt) + step + 1 >= self._max_context:
+            row.ending = STOP_CONTEXT
+        return token
+
+    def _record(self, row: _Row, prompt_index: int, prompt: tuple[int, ...]) -> SampleRecord:
+        assert row.ending is not None
+        return SampleRecord(recipe=row.recipe, prompt_index=prompt_index,
+                            sample_index=row.sample_index, token_ids=tuple(row.tokens),
+                            text=sample_text(self._decode, prompt, row.tokens),
+                            logprobs=tuple(row.logprobs), kept=tuple(row.kept),
+                            final_entropy=tuple(row.entropies), ending=row.ending)
+
+
+def sample_text(decode: DecodeFn, prompt: Sequence[int], tokens: Sequence[int]) -> str:
+    """The text the tokens add after the prompt (a few prompt tokens give spacing context)."""
+    context = list(prompt[-6:])
+    before = decode(context)
+    after = decode(context + list(tokens))
+    return after[len(before):] if after.startswith(before) else decode(list(tokens))
+
