@@ -24,8 +24,9 @@ from tui.app.inspect_screen import InspectScreen
 from tui.app.key_bar import key_items
 from tui.app.safe_text import shown, shown_token
 from tui.cli import main as cli_main
+from tui.files import write_atomic
 from tui.session.step_analysis import format_prob
-from tui.transcripts.format import lines, write_atomic
+from tui.transcripts.format import lines
 from tui.transcripts.reader import StoredSession
 from tui.workbench.replay_source import replay_source
 

@@ -24,12 +24,9 @@ from transcript_fakes import (
 )
 
 from tui.errors import UserError
+from tui.files import write_atomic
 from tui.session.record import STOP_REASONS, StepRecord, TopToken
-from tui.transcripts.format import (
-    step_line,
-    transcript_lines,
-    write_atomic,
-)
+from tui.transcripts.format import step_line, transcript_lines
 from tui.transcripts.headers import FORMAT, VERSION, PaneHeader, TranscriptHeader
 from tui.transcripts.reader import StoredSession, TranscriptError
 

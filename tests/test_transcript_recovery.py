@@ -172,7 +172,7 @@ def test_any_sequence_of_changes_reads_back_as_the_final_session(tmp_path, ops, 
     recovered = read_recovery(path)
     _assert_same(recovered, s.view())
     out = tmp_path / "out.jsonl"  # and as a normal transcript, through the strict reader
-    from tui.transcripts.format import write_atomic
+    from tui.files import write_atomic
 
     write_atomic(out, recovered.transcript_lines())
     stored = StoredSession.open(out)

@@ -14,6 +14,7 @@ from pathlib import Path
 import pytest
 from transcript_fakes import run_cli
 
+from tui.files import write_atomic
 from tui.session.opening import open_session
 from tui.session.scenario import parse_scenario
 from tui.transcripts import format as transcript
@@ -52,7 +53,7 @@ def saved(lm, tmp_path_factory) -> Path:
     for _ in range(6):
         engine.step()
     folder = tmp_path_factory.mktemp("rerun")
-    path = transcript.write_atomic(folder / "s.jsonl",
+    path = write_atomic(folder / "s.jsonl",
                                    transcript.lines(engine.view(), info, engine.prompt_ids))
     return path
 
@@ -107,7 +108,7 @@ def test_unshared_draws_keep_each_panes_stream_after_a_removal(lm, tmp_path, mon
     engine.remove_pane(1)  # pane 2 keeps draw stream 2; a naive re-run would give it 1
     for _ in range(5):
         engine.step()
-    path = transcript.write_atomic(tmp_path / "u.jsonl",
+    path = write_atomic(tmp_path / "u.jsonl",
                                    transcript.lines(engine.view(), info, engine.prompt_ids))
     assert [p.id for p in engine.view().panes] == [0, 2]
     assert run_cli(["rerun", str(path)], monkeypatch) == 0

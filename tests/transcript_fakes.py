@@ -11,8 +11,9 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
+from tui.files import write_atomic
 from tui.session.record import STOP_LENGTH, StepRecord, TopToken
-from tui.transcripts.format import transcript_lines, write_atomic
+from tui.transcripts.format import transcript_lines
 from tui.transcripts.headers import PaneHeader, TranscriptHeader
 
 TRANSCRIPT_COMMANDS = ("report", "rerun", "recover")

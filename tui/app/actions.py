@@ -279,7 +279,7 @@ class SessionActions:
     @work(thread=True, exclusive=False, exit_on_error=False, group="save")
     def _write_transcript(self: "LogitforkApp", path: Path, view: Any, version: int,
                           then_quit: bool) -> None:
-        from tui.transcripts.format import write_atomic
+        from tui.files import write_atomic
 
         assert self.source is not None
         lines = self.source.transcript_lines(view)

@@ -30,7 +30,7 @@ def main(args: argparse.Namespace) -> int:
         return _list(list_recoveries(), recovery_dir())
     if not args.out:
         raise UserError("--out: give the transcript file to write, e.g. --out session.jsonl")
-    from tui.transcripts.format import write_atomic
+    from tui.files import write_atomic
 
     path = find_recovery(args.log)
     rec = read_recovery(path)

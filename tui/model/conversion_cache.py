@@ -34,6 +34,7 @@ from pathlib import Path
 from typing import Any, Callable, Iterator, TextIO
 
 from tui.errors import UserError
+from tui.files import write_atomic
 
 Progress = Callable[[str, float], None]
 
@@ -131,13 +132,8 @@ def write_direct_record(folder: Path, tokenizer: Any) -> None:
 
     record = {"format": DIRECT_FORMAT, "transformers": transformers.__version__,
               "tokenizer_module": type(tokenizer).__module__, "tokenizer_class": type(tokenizer).__name__}
-    temp = folder / f".{DIRECT}.{os.getpid()}.tmp"
-    try:
-        temp.write_text(json.dumps(record, indent=2) + "\n", encoding="utf-8")
-        os.replace(temp, folder / DIRECT)
-    except OSError:
-        with suppress(OSError):
-            temp.unlink(missing_ok=True)
+    with suppress(OSError):
+        write_atomic(folder / DIRECT, json.dumps(record, indent=2) + "\n")
 
 
 def convert_gguf(gguf_file: Path, folder: Path, progress: Progress) -> None:

@@ -12,10 +12,10 @@ from pathlib import Path
 from typing import Iterator
 
 from tui.errors import UserError
+from tui.files import write_atomic
 from tui.reports.gather import Report, gather, plots_png
 from tui.reports.html import render_html
 from tui.reports.markdown import render_md
-from tui.transcripts.format import write_atomic
 from tui.transcripts.reader import StoredSession
 
 # ----- writing -------------------------------------------------------------------------------

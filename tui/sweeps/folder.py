@@ -27,6 +27,7 @@ from pathlib import Path
 from typing import Any, Iterable, Sequence
 
 from tui.errors import UserError
+from tui.files import write_atomic
 from tui.sweeps.metrics import SampleRecord
 
 FOLDER_FORMAT = "logitfork-sweep-folder/1"
@@ -97,19 +98,9 @@ def package_versions() -> dict[str, str]:
     return out
 
 
-def write_json_atomic(path: Path, data: Any) -> None:
-    """Write JSON through a temporary file and a rename, so a crash leaves old or new."""
-    write_text_atomic(path, json.dumps(data, indent=2, ensure_ascii=False) + "\n")
-
-
-def write_text_atomic(path: Path, text: str | bytes) -> None:
-    """Write `path` through a synced temporary file and one rename (text as UTF-8)."""
-    tmp = path.with_name(path.name + ".tmp")
-    with open(tmp, "wb") as fh:
-        fh.write(text.encode("utf-8") if isinstance(text, str) else text)
-        fh.flush()
-        os.fsync(fh.fileno())
-    os.replace(tmp, path)
+def json_text(data: Any) -> str:
+    """The JSON files of a sweep folder: indented, UTF-8, one trailing newline."""
+    return json.dumps(data, indent=2, ensure_ascii=False) + "\n"
 
 
 def read_manifest(folder: Path) -> Manifest:
@@ -192,9 +183,9 @@ class SweepFolder:
             manifest = old
         else:
             path.mkdir(parents=True, exist_ok=True)
-            write_text_atomic(path / SWEEP_FILE, sweep_text)
-            write_json_atomic(path / VERSIONS, versions)
-            write_json_atomic(path / MANIFEST, manifest.to_json())
+            write_atomic(path / SWEEP_FILE, sweep_text)
+            write_atomic(path / VERSIONS, json_text(versions))
+            write_atomic(path / MANIFEST, json_text(manifest.to_json()))
         chunks, end = read_samples_file(path / SAMPLES)
         _check_chunks(path / SAMPLES, manifest, chunks)
         samples = path / SAMPLES
@@ -336,7 +327,7 @@ def _write_merged(out: Path, first: SweepFolder, folders: Sequence[SweepFolder],
                         m.chunks, m.seed, shard=None, merged_from=sources)
     for name in (SWEEP_FILE, VERSIONS):
         if (first.path / name).is_file():
-            write_text_atomic(out / name, (first.path / name).read_text(encoding="utf-8"))
-    write_text_atomic(out / SAMPLES, b"".join(_chunk_lines(c, chunks[c]) for c in sorted(chunks)))
-    write_json_atomic(out / MANIFEST, manifest.to_json())
+            write_atomic(out / name, (first.path / name).read_text(encoding="utf-8"))
+    write_atomic(out / SAMPLES, b"".join(_chunk_lines(c, chunks[c]) for c in sorted(chunks)))
+    write_atomic(out / MANIFEST, json_text(manifest.to_json()))
     return SweepFolder(out, manifest, chunks)

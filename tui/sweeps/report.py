@@ -16,7 +16,8 @@ import shutil
 from pathlib import Path
 from typing import Any, TextIO
 
-from tui.sweeps.folder import SweepFolder, write_text_atomic
+from tui.files import write_atomic
+from tui.sweeps.folder import SweepFolder
 from tui.sweeps.results import (
     AXIS_LABELS,
     DIVERSITY,
@@ -194,8 +195,8 @@ def report_folder(folder: SweepFolder, out: TextIO, *, n_resamples: int = 1000,
     m = folder.manifest
     results = compute_results(m.title, m.recipes, m.prompts, folder.samples(),
                               n_resamples=n_resamples, seed=m.seed)
-    write_text_atomic(folder.path / "results.csv", csv_text(results))
-    write_text_atomic(folder.path / "results.md", markdown_text(results))
+    write_atomic(folder.path / "results.csv", csv_text(results))
+    write_atomic(folder.path / "results.md", markdown_text(results))
     write_scatter_png(results, folder.path / "front.png")
     print_tables(results, out)
     chart = terminal_front(results, chart_width)

@@ -7,18 +7,15 @@ changes and fork origin, the draw settings and the package versions. Every later
 line is one `StepRecord` with ``"kind": "step"``, in step order, and within a step in
 the header's pane order. Readers live in `tui.transcripts.reader`.
 
-Files are written atomically: a temp file in the same folder, flushed and fsynced,
-then `os.replace`, so an existing transcript is never left half-written.
+Files are written with `tui.files.write_atomic`, so an existing transcript is never
+left half-written.
 Nothing here imports torch, Textual or Rich.
 """
 
 from __future__ import annotations
 
 import json
-import os
-import tempfile
 from datetime import datetime, timezone
-from pathlib import Path
 from typing import IO, TYPE_CHECKING, Any, Iterable, Iterator
 
 from tui.session.record import StepRecord
@@ -80,58 +77,6 @@ def transcript_lines(head: TranscriptHeader, panes_records: Iterable[Iterable[St
 def lines(view: "SessionView", info: "SessionInfo", prompt_ids: Iterable[int]) -> Iterator[str]:
     """The transcript as text lines (header first), steps in step order then pane order."""
     return transcript_lines(header_of(view, info, prompt_ids), [p.records for p in view.panes])
-
-
-def write_atomic(path: str | os.PathLike[str], text_lines: Iterable[str]) -> Path:
-    """Write lines to `path` through a temp file in the same folder, fsync, then replace.
-
-    If anything fails (the lines' generator raises, the disk fills), the temp file is
-    removed and whatever was at `path` before is left untouched.
-    """
-    path = Path(path)
-    folder = path.parent if str(path.parent) else Path(".")
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=folder)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as fh:
-            for line in text_lines:
-                fh.write(line)
-                fh.write("\n")
-            fh.flush()
-            os.fchmod(fh.fileno(), _mode_for(path))
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-    _fsync_folder(folder)
-    return path
-
-
-def _mode_for(path: Path) -> int:
-    """The file's present mode if it exists, else what `open` would give (0o666 - umask).
-
-    mkstemp creates 0o600 files; a saved transcript should get the usual mode.
-    """
-    try:
-        return path.stat().st_mode & 0o7777
-    except OSError:
-        mask = os.umask(0o022)  # read the umask (the only portable way), then put it back
-        os.umask(mask)
-        return 0o666 & ~mask
-
-
-def _fsync_folder(folder: Path) -> None:
-    """Make the rename itself durable (POSIX; a no-op where folders cannot be opened)."""
-    try:
-        fd = os.open(folder, os.O_RDONLY)
-    except OSError:
-        return
-    try:
-        os.fsync(fd)
-    except OSError:
-        pass
-    finally:
-        os.close(fd)
 
 
 def write_stream(fh: IO[str], text_lines: Iterable[str]) -> None:
