@@ -13,7 +13,7 @@ import time
 
 import pytest
 
-from tui.session.engine import EngineError, PaneView, SessionView
+from tui.session.views import EngineError, PaneView, SessionView
 from tui.workbench.stepper import (
     Failed,
     OperationDone,

@@ -18,8 +18,8 @@ from rich.text import Text
 from tui.app.colouring import FORCED_MARK, Scheme
 from tui.app.safe_text import SPACE_MARK, is_safe, shown, shown_line, shown_token
 from tui.app.token_pane import pane_text
-from tui.session.engine import PaneView, SessionView
 from tui.session.record import StepRecord, TopToken
+from tui.session.views import PaneView, SessionView
 from tui.workbench.source import StaticSource
 
 try:

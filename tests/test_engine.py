@@ -14,9 +14,10 @@ import pytest
 import torch
 
 from tui.model.forward import Runner
-from tui.session.engine import Engine, EngineError
+from tui.session.engine import Engine
 from tui.session.record import STOP_CONTEXT, STOP_EOS, STOP_LENGTH, STOP_STRING
 from tui.session.scenario import PaneSpec
+from tui.session.views import EngineError
 
 PROMPT = "The lamplighter of Orrin Bay climbed the"
 
@@ -38,12 +39,12 @@ def runner_for(lm):
 
 
 def make(lm, recipes, *, seed=5, shared=True, max_new=30, stop=(), max_context=None,
-         seeds=None) -> Engine:
+         seeds=None, eos=()) -> Engine:
     ids = lm.encode_prompt(PROMPT, None)
     panes = [PaneSpec(f"p{i}", r, None if seeds is None else seeds[i])
              for i, r in enumerate(recipes)]
     return Engine(runner_for(lm), lm.decode, ids, panes, seed=seed, shared_draws=shared,
-                  max_new_tokens=max_new, stop_strings=stop, eos_ids=(),
+                  max_new_tokens=max_new, stop_strings=stop, eos_ids=eos,
                   max_context=max_context or lm.max_context)
 
 
@@ -126,11 +127,10 @@ def test_rewind_replays_the_same_draws(lm):
 
 
 def test_rewind_brings_back_a_pane_that_stopped_later(lm):
-    e = make(lm, ["temperature=1.0", "temperature=1.0"])
+    eos = lm.tokenizer.eos_token_id
+    e = make(lm, ["temperature=1.0", "temperature=1.0"], eos=(eos,))
     run(e, 3)
     # Make pane 1 stop by giving it the end-of-text token.
-    eos = lm.tokenizer.eos_token_id
-    e.eos_ids = frozenset({eos})
     e.force(1, 3, eos)
     e.step()
     assert e.view().panes[1].stop == STOP_EOS

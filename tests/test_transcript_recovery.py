@@ -22,10 +22,10 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from transcript_fakes import record, run_cli
 
-from tui.session.engine import PaneView, SessionView
 from tui.session.opening import SessionInfo
 from tui.session.record import STOP_EOS
 from tui.session.scenario import PaneSpec, Scenario
+from tui.session.views import PaneView, SessionView
 from tui.transcripts.headers import PaneHeader
 from tui.transcripts.reader import StoredSession, TranscriptError
 from tui.transcripts.recovery_log import STATE_DIR_ENV, RecoveryLog, recovery_dir

@@ -19,30 +19,20 @@ from __future__ import annotations
 import threading
 from collections import OrderedDict
 from dataclasses import dataclass, field, replace
-from typing import Callable, Sequence, TypeVar
+from typing import Callable, Sequence
 
 import numpy as np
 import torch
 
-from tui.decoding import Recipe, Sampler, StageResult, draw
+from tui.decoding import Recipe, Sampler, StageResult
 from tui.model.forward import Runner
 from tui.model.kv import KV
-from tui.session.record import (
-    STOP_CONTEXT,
-    STOP_EOS,
-    STOP_LENGTH,
-    STOP_STRING,
-    TOP_N,
-    IncrementalDecoder,
-    StepRecord,
-    TopToken,
-)
+from tui.session.change_log import ChangeLog
+from tui.session.record import TOP_N, IncrementalDecoder, StepRecord, TopToken
+from tui.session.row_step import Emitted, RawStep, StopRules, emit, rank_of, top_ids
 from tui.session.scenario import MAX_PANES, PaneSpec
-from tui.session.views import EngineError, PaneView, SessionView, mean_logprob
+from tui.session.views import EngineError, PaneView, SessionView
 
-__all__ = ["Engine", "EngineError", "PaneView", "SessionView", "mean_logprob"]
-
-T = TypeVar("T")
 DecodeFn = Callable[[Sequence[int]], str]
 LOGITS_KEPT = 48  # recent steps whose logits stay in memory, per pane (196 KB each at V=49152)
 
@@ -61,7 +51,7 @@ class Pane:
     samplers: list[tuple[Recipe, Sampler]] = field(default_factory=list)  # before each step
     forced_next: int | None = None
     decoder: IncrementalDecoder | None = None  # rebuilt lazily after a rewind
-    recipe_log: list[tuple[int, str]] = field(default_factory=list)  # (from step, recipe)
+    recipe_log: ChangeLog[str] = field(default_factory=ChangeLog)  # (from step, recipe)
     origin: tuple[int, int] | None = None  # (source pane id, step) for a fork
 
     @property
@@ -94,11 +84,12 @@ class Engine:
         self._decode = decode
         self.prompt_ids: tuple[int, ...] = tuple(prompt_ids)
         self.seed = seed
-        self._draw_log: list[tuple[int, bool]] = [(0, shared_draws)]  # (from step, shared)
+        self._draw_log: ChangeLog[bool] = ChangeLog(((0, shared_draws),))  # (from step, shared)
         self.max_new_tokens = max_new_tokens
         self.stop_strings = tuple(stop_strings)
         self.eos_ids = frozenset(eos_ids)
         self.max_context = max_context
+        self._stops = StopRules(self.eos_ids, self.stop_strings, max_new_tokens, max_context)
         self._lock = threading.RLock()
         self._next_id = 0
         self._panes: list[Pane] = []
@@ -120,7 +111,7 @@ class Engine:
     @property
     def shared_draws(self) -> bool:
         """Whether the panes share one uniform number per step now (the draw log's last entry)."""
-        return self._draw_log[-1][1]
+        return self._draw_log.entries[-1][1]
 
     @property
     def step_index(self) -> int:
@@ -131,9 +122,9 @@ class Engine:
     def view(self) -> SessionView:
         with self._lock:
             panes = tuple(PaneView(p.id, p.name, str(p.recipe), p.seed, tuple(p.records), p.stop,
-                                   tuple(p.recipe_log), p.origin) for p in self._panes)
+                                   p.recipe_log.entries, p.origin) for p in self._panes)
             return SessionView(self.step_index, self.seed, self.shared_draws, panes,
-                               tuple(self._draw_log))
+                               self._draw_log.entries)
 
     def pane(self, pane_id: int) -> Pane:
         for p in self._panes:
@@ -161,7 +152,7 @@ class Engine:
     def u_at(self, pane_id: int, step: int) -> float:
         """The uniform number a pane draws with at a step (a pure function of the seed)."""
         pane = self.pane(pane_id)
-        shared = next(s for start, s in reversed(self._draw_log) if start <= step)
+        shared = self._draw_log.at(step, self.shared_draws)
         if shared:
             key: tuple[int, ...] = (0, step)
             entropy = self.seed
@@ -180,59 +171,36 @@ class Engine:
             if not self._live:
                 return []
             t = len(self.pane(self._live[0]).records)
-            logits = self._pending  # (B, V), float32
-            logp = torch.log_softmax(logits.double(), dim=-1)  # (B, V)
-            raw = logp.exp()
-            raw_entropy = -(torch.where(raw > 0, raw * logp, torch.zeros_like(raw))).sum(-1)
-            top_vals, top_ids = torch.topk(logits, min(TOP_N, logits.shape[1]), dim=-1)
-            logits_np = logits.numpy()
+            logits_np = self._pending.numpy()  # (B, V), float32
+            raw = RawStep.of(logits_np)
             emitted: list[StepRecord] = []
             for row, pane_id in enumerate(self._live):
                 pane = self.pane(pane_id)
                 history = self.prompt_ids + tuple(pane.tokens)
                 pane.samplers.append((pane.recipe, pane.sampler.copy()))
-                final = pane.sampler.distribution(logits_np[row], history)
                 u = self.u_at(pane_id, t)
-                token = pane.forced_next if pane.forced_next is not None else draw(final, u)
-                forced = pane.forced_next is not None
+                out = emit(pane.sampler, logits_np[row], history, u, pane.forced_next)
                 pane.forced_next = None
-                # A forced token may lie outside the kept set: the state still learns of it.
-                pane.sampler.observe(token, None if forced else final)
-                rec = self._record(pane, t, token, u, forced, final, logp[row], raw[row],
-                                   float(raw_entropy[row]), top_ids[row].tolist())
+                rec = self._record(pane, t, out, u, raw.logp[row], raw.probs[row],
+                                   float(raw.entropy[row]))
                 pane.records.append(rec)
                 emitted.append(rec)
                 self._remember_logits(pane_id, t, logits_np[row])
             self._advance([r.token_id for r in emitted])
             return emitted
 
-    def _record(self, pane: Pane, t: int, token: int, u: float, forced: bool, final: np.ndarray,
-                logp: torch.Tensor, raw: torch.Tensor, raw_entropy: float,
-                top: list[int]) -> StepRecord:
-        chosen = logp[token]
-        ids = torch.arange(logp.shape[0])
-        rank = 1 + int((logp > chosen).sum()) + int(((logp == chosen) & (ids < token)).sum())
-        nz = final[final > 0]
-        final_entropy = float(-(nz * np.log(nz)).sum())
-        top = sorted(top, key=lambda i: (-float(logp[i]), i))
+    def _record(self, pane: Pane, t: int, out: Emitted, u: float, logp: np.ndarray,
+                raw: np.ndarray, raw_entropy: float) -> StepRecord:
+        token, final = out.token, out.final
         piece = self._decoder_for(pane).push(token)
-        text = self._tail(pane) + piece
-        stop = None
-        if token in self.eos_ids:
-            stop = STOP_EOS
-        elif any(s in text for s in self.stop_strings):
-            stop = STOP_STRING
-        elif t + 1 >= self.max_new_tokens:
-            stop = STOP_LENGTH
-        elif len(self.prompt_ids) + t + 1 >= self.max_context:
-            stop = STOP_CONTEXT
+        stop = self._stops.ending(token, t, len(self.prompt_ids), self._tail(pane) + piece)
         return StepRecord(
-            step=t, pane=pane.id, token_id=token, text=piece, rank=rank,
+            step=t, pane=pane.id, token_id=token, text=piece, rank=rank_of(logp, token),
             raw_prob=float(raw[token]), final_prob=float(final[token]),
-            kept=int(np.count_nonzero(final)), raw_entropy=raw_entropy,
-            final_entropy=final_entropy, u=u,
-            top=tuple(TopToken(i, self._text_of(i), float(raw[i]), float(final[i])) for i in top),
-            forced=forced, stop=stop)
+            kept=out.kept, raw_entropy=raw_entropy, final_entropy=out.final_entropy, u=u,
+            top=tuple(TopToken(i, self._text_of(i), float(raw[i]), float(final[i]))
+                      for i in top_ids(logp, TOP_N)),
+            forced=out.forced, stop=stop)
 
     def _advance(self, tokens: list[int]) -> None:
         """Feed the emitted tokens; stopped panes leave the batch (their rows are parked)."""
@@ -272,11 +240,11 @@ class Engine:
                     del pane.samplers[step:]
                     pane.forced_next = None
                     pane.decoder = None
-                    pane.recipe_log = _clamp_log(pane.recipe_log, step)
+                    pane.recipe_log = pane.recipe_log.rewound(step)
                     live.append(pane.id)
                 else:
                     self._parked[pane.id] = rows[pane.id]  # stopped before `step`: stays stopped
-            self._draw_log = _clamp_log(self._draw_log, step)
+            self._draw_log = self._draw_log.rewound(step)
             for key in [k for k in self._logits if k[1] > step]:
                 del self._logits[key]
             self._rebuild(live, {pid: rows[pid] for pid in live}, step)
@@ -311,7 +279,7 @@ class Engine:
             pane = self._new_pane(name or f"{source.name} fork", recipe, None, stream)
             step = len(source.records)
             pane.origin = (pane_id, step)
-            pane.recipe_log = [(s, r) for s, r in source.recipe_log] + [(step, str(recipe))]
+            pane.recipe_log = source.recipe_log.set_from(step, str(recipe))
             pane.records = [replace(r, pane=pane.id) for r in source.records]
             pane.samplers = [(r, s.copy()) for r, s in source.samplers]
             self._panes.append(pane)
@@ -375,7 +343,7 @@ class Engine:
             pane.recipe = Recipe.parse(recipe) if isinstance(recipe, str) else recipe
             pane.sampler = pane.recipe.sampler()
             step = len(pane.records)
-            pane.recipe_log = _set_log(pane.recipe_log, step, str(pane.recipe))
+            pane.recipe_log = pane.recipe_log.set_from(step, str(pane.recipe))
 
     def force(self, pane_id: int, step: int, token_id: int) -> None:
         """Rewind to `step` and make `pane_id` emit `token_id` there instead of its draw."""
@@ -394,7 +362,7 @@ class Engine:
         with self._lock:
             self.rewind(0)
             self.seed = seed
-            self._draw_log = [(0, self.shared_draws)]  # the present setting, from the start
+            self._draw_log = ChangeLog(((0, self.shared_draws),))  # the present setting, from the start
             for pane in self._panes:
                 pane.sampler = pane.recipe.sampler()
             self._logits.clear()
@@ -402,9 +370,9 @@ class Engine:
     def set_shared_draws(self, shared: bool) -> None:
         """Takes effect from the next step on (the uniform numbers already drawn stay)."""
         with self._lock:
-            self._draw_log = _set_log(self._draw_log, self.step_index, shared)
+            self._draw_log = self._draw_log.set_from(self.step_index, shared)
 
-    # ----- for the inspect view (added by the app's engineer) --------------------------
+    # ----- for the inspect view --------------------------------------------------------
 
     def trace_at(self, pane_id: int, step: int) -> list[StageResult]:
         """The pane's recipe stage by stage at `step`, from the sampler state it had then."""
@@ -422,7 +390,7 @@ class Engine:
                   stream: int | None = None) -> Pane:
         pane = Pane(id=self._next_id, name=name, recipe=recipe, sampler=recipe.sampler(),
                     seed=seed, stream=self._next_id if stream is None else stream,
-                    recipe_log=[(0, str(recipe))])
+                    recipe_log=ChangeLog(((0, str(recipe)),)))
         self._next_id += 1
         return pane
 
@@ -435,7 +403,7 @@ class Engine:
 
     def _tail(self, pane: Pane) -> str:
         """Enough of the pane's recent text to find any stop string ending in the next piece."""
-        need = max((len(s) for s in self.stop_strings), default=0)
+        need = self._stops.span
         parts: list[str] = []
         size = 0
         for rec in reversed(pane.records):
@@ -457,15 +425,3 @@ class Engine:
         while len(self._logits) > limit:
             self._logits.popitem(last=False)
 
-
-def _set_log(log: list[tuple[int, T]], step: int, value: T) -> list[tuple[int, T]]:
-    """`value` from `step` on: changes planned at or after `step` give way to it."""
-    return [e for e in log if e[0] < step] + [(step, value)]
-
-
-def _clamp_log(log: list[tuple[int, T]], step: int) -> list[tuple[int, T]]:
-    """Changes made after `step` now take effect at `step` (the latest one wins)."""
-    out: dict[int, T] = {}
-    for s, r in log:
-        out[min(s, step)] = r
-    return sorted(out.items())

@@ -15,6 +15,7 @@ from typing import Callable, Sequence
 import numpy as np
 
 from tui.decoding import INPUT, Recipe, RecipeError, StageResult, cut_by
+from tui.session.change_log import ChangeLog
 from tui.session.record import StepRecord
 from tui.session.views import PaneView
 
@@ -53,11 +54,7 @@ class RecipeRow:
 
 def recipe_at(pane: PaneView, step: int) -> str:
     """The recipe a pane decoded `step` with (its recipe log; the present one if none)."""
-    chosen = pane.recipe
-    for start, text in pane.recipe_log:
-        if start <= step:
-            chosen = text
-    return chosen
+    return ChangeLog(pane.recipe_log).at(step, pane.recipe)
 
 
 def top_rows(record: StepRecord, trace: Sequence[StageResult] | None = None) -> tuple[TopRow, ...]:

@@ -25,15 +25,10 @@ from typing import Callable, Protocol, Sequence
 import numpy as np
 import torch
 
-from tui.decoding import Recipe, Sampler, draw
+from tui.decoding import Recipe, Sampler
 from tui.model.kv import KV
-from tui.session.record import (
-    STOP_CONTEXT,
-    STOP_EOS,
-    STOP_LENGTH,
-    STOP_STRING,
-    IncrementalDecoder,
-)
+from tui.session.record import IncrementalDecoder
+from tui.session.row_step import RawStep, StopRules, emit
 from tui.sweeps.metrics import SampleRecord
 from tui.sweeps.spec import DEFAULT_CHUNK_ROWS
 
@@ -135,10 +130,9 @@ class SweepRunner:
         self.runner = runner
         self.job = job
         self._decode = decode
-        self._eos = frozenset(int(e) for e in eos_ids)
-        self._max_context = max_context
+        self._stops = StopRules(frozenset(int(e) for e in eos_ids), job.stop,
+                                job.max_new_tokens, max_context)
         self._recipes = [Recipe.parse(r) for r in job.recipes]
-        self._stop_span = max((len(s) for s in job.stop), default=0)
         self._prefilled: tuple[int, KV, torch.Tensor] | None = None  # the last prompt's
 
     def prompt_state(self, prompt_index: int) -> tuple[KV, torch.Tensor]:
@@ -163,8 +157,8 @@ class SweepRunner:
         logits = prompt_logits.unsqueeze(0).expand(len(rows), -1)  # (B, V)
         step = 0
         while live:
-            logp = torch.log_softmax(logits.double(), dim=-1).numpy()  # (B, V) raw model
-            logits_np = logits.float().numpy()
+            logits_np = logits.float().numpy()  # (B, V)
+            logp = RawStep.of(logits_np).logp  # the raw model's
             tokens = [self._emit(rows[i], step, prompt, logits_np[b], logp[b])
                       for b, i in enumerate(live)]
             keep = [b for b, i in enumerate(live) if rows[i].ending is None]
@@ -183,26 +177,18 @@ class SweepRunner:
     def _emit(self, row: _Row, step: int, prompt: tuple[int, ...], logits: np.ndarray,
               logp: np.ndarray) -> int:
         """Draw one token for a row and note what the sample needs; returns the token."""
-        final = row.sampler.distribution(logits, prompt + tuple(row.tokens))
-        token = draw(final, float(row.uniforms[step]))
-        row.sampler.observe(token, final)
-        nz = final[final > 0]
+        out = emit(row.sampler, logits, prompt + tuple(row.tokens), float(row.uniforms[step]))
+        token = out.token
         row.tokens.append(token)
         row.logprobs.append(float(logp[token]))
-        row.kept.append(int(nz.size))
-        nats = -float((nz * np.log(nz)).sum())
-        row.entropies.append(nats if nats > 0 else 0.0)  # one-hot: +0.0, not -0.0
-        if self._stop_span:  # the text matters only for stop strings (the sample's is made once)
+        row.kept.append(out.kept)
+        row.entropies.append(out.final_entropy)
+        span = self._stops.span
+        text = ""
+        if span:  # the text matters only for stop strings (the sample's is made once)
             text = row.tail + row.decoder.push(token)
-            row.tail = text[-self._stop_span:]
-        if token in self._eos:
-            row.ending = STOP_EOS
-        elif self._stop_span and any(s in text for s in self.job.stop):
-            row.ending = STOP_STRING
-        elif step + 1 >= self.job.max_new_tokens:
-            row.ending = STOP_LENGTH
-        elif len(prompt) + step + 1 >= self._max_context:
-            row.ending = STOP_CONTEXT
+            row.tail = text[-span:]
+        row.ending = self._stops.ending(token, step, len(prompt), text)
         return token
 
     def _record(self, row: _Row, prompt_index: int, prompt: tuple[int, ...]) -> SampleRecord:

@@ -10,6 +10,8 @@ from dataclasses import dataclass, field, replace
 from importlib import metadata
 from typing import TYPE_CHECKING, Any
 
+from tui.session.change_log import ChangeLog
+
 if TYPE_CHECKING:
     from tui.session.views import PaneView
 
@@ -49,14 +51,8 @@ class PaneHeader:
                 "origin": list(self.origin) if self.origin else None, "stop": self.stop}
 
     def rewound(self, step: int) -> "PaneHeader":
-        """The entry after a rewind to `step`: later recipe changes take effect at `step`.
-
-        The same rule as the engine's rewind (the latest change wins).
-        """
-        log: dict[int, str] = {}
-        for s, r in self.recipe_log:
-            log[min(s, step)] = r
-        return replace(self, recipe_log=tuple(sorted(log.items())))
+        """The entry after a rewind to `step` (the engine's rule, `ChangeLog.rewound`)."""
+        return replace(self, recipe_log=ChangeLog(self.recipe_log).rewound(step).entries)
 
     @classmethod
     def of(cls, pane: "PaneView") -> "PaneHeader":

@@ -17,6 +17,7 @@ from dataclasses import dataclass
 from typing import TYPE_CHECKING
 
 from tui.errors import UserError
+from tui.session.change_log import ChangeLog
 from tui.session.record import StepRecord
 from tui.session.scenario import PaneSpec
 from tui.transcripts.headers import PaneHeader, TranscriptHeader, package_versions
@@ -54,19 +55,19 @@ class RerunResult:
 def recipe_at_start(pane: PaneHeader) -> str:
     """The recipe a pane decoded its first own step with (step 0, or its fork step)."""
     first = pane.origin[1] if pane.origin else 0
-    at = [r for s, r in pane.recipe_log if s == first]
-    return at[-1] if at else pane.recipe
+    at = ChangeLog(pane.recipe_log).starting_at(first)
+    return pane.recipe if at is None else at
 
 
 def _changes(pane: PaneHeader) -> dict[int, str]:
     """Recipe changes after the pane's first own step: step -> recipe."""
-    first = pane.origin[1] if pane.origin else 0
-    return {s: r for s, r in pane.recipe_log if s > first}
+    return ChangeLog(pane.recipe_log).after(pane.origin[1] if pane.origin else 0)
 
 
 def build_engine(head: TranscriptHeader, lm: "LoadedModel") -> tuple["Engine", dict[int, int]]:
     """An engine holding the panes that decode from the prompt; header id -> engine id."""
-    from tui.session.engine import Engine, EngineError
+    from tui.session.engine import Engine
+    from tui.session.views import EngineError
 
     starters = [p for p in head.panes if p.origin is None]
     if not starters:
@@ -85,14 +86,14 @@ def build_engine(head: TranscriptHeader, lm: "LoadedModel") -> tuple["Engine", d
 
 def rerun(stored: StoredSession, lm: "LoadedModel") -> RerunResult:
     """Decode `stored` again on `lm` and return the first difference, if any."""
-    from tui.session.engine import EngineError
+    from tui.session.views import EngineError
 
     head = stored.header
     engine, ids = build_engine(head, lm)
     forks = [(p, p.origin) for p in sorted(head.panes, key=lambda p: p.id) if p.origin]
     back = {live: own for own, live in ids.items()}  # engine pane id -> header pane id
     changes = {p.id: _changes(p) for p in head.panes}
-    draw_changes = {s: shared for s, shared in head.draw_log if s > 0}
+    draw_changes = ChangeLog(head.draw_log).after(0)
     compared = steps = 0
     difference = None
     try:
