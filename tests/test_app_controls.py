@@ -125,7 +125,7 @@ async def test_fork_edit_add_remove(lm):
         assert "1.5" in dialog.error
         await pilot.press("escape")
         assert app.view.panes[-1].recipe == "temperature=0.7 top_k=5"
-        assert app.stepper.engine.pane(fork.id).recipe_log[-1][1] == "temperature=0.7 top_k=5"
+        assert [p for p in app.view.panes if p.id == fork.id][0].recipe_log[-1][1] == "temperature=0.7 top_k=5"
 
         # edit with a valid recipe: from the next step on
         await pilot.press("e")

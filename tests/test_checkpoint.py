@@ -29,7 +29,7 @@ except ImportError:
     from tests.tiny_model import LAYERS_VOCAB, tiny_llama, tiny_qwen2
 
 ROOT = Path(__file__).resolve().parent.parent
-TOL = 1e-4  # the project's parity tolerance (issue 2), in logits
+TOL = 1e-4  # the project's parity tolerance, in logits
 MODELS = {
     "llama-tied": lambda: tiny_llama(),
     "llama-untied-theta-headdim": lambda: tiny_llama(tie_word_embeddings=False, rope_theta=500000.0,

@@ -24,7 +24,7 @@ except ImportError:
     from tests.tiny_model import LAYERS_VOCAB as VOCAB
     from tests.tiny_model import tiny_llama, tiny_qwen2
 
-TOL = 1e-4  # the project's parity tolerance (issue 2), in logits
+TOL = 1e-4  # the project's parity tolerance, in logits
 
 LLAMA3_ROPE = {"rope_type": "llama3", "rope_theta": 500000.0, "factor": 8.0, "low_freq_factor": 1.0,
                "high_freq_factor": 4.0, "original_max_position_embeddings": 16}
@@ -100,7 +100,7 @@ def test_logits_of_and_extend_match_transformers(model):
 
 
 def test_batched_stepping_equals_batch_one_stepping(model):
-    # Each row alone, then all three together: the same logits (issue 2's batching contract).
+    # Each row alone, then all three together: the same logits (the batching contract).
     ids = random_ids(3, 18, seed=11)
     runner = LeanRunner(model)
     kv, _ = runner.prefill(ids[:, :6].tolist())

@@ -13,6 +13,7 @@ import torch
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from tui.session.record import mean_logprob, perplexity
 from tui.sweeps.bootstrap import bootstrap_ci, bootstrap_ci_sets, resample_indices
 from tui.sweeps.metrics import (
     MEASURE_NAMES,
@@ -20,9 +21,7 @@ from tui.sweeps.metrics import (
     SampleRecord,
     SelfBleu,
     distinct_n,
-    mean_logprob,
     measure_samples,
-    perplexity,
     repeated_ngram_share,
     self_bleu,
 )

@@ -375,7 +375,7 @@ def test_a_warm_start_reads_the_cache_directly_and_matches_transformers(tiny_ggu
     kv, direct = warm.runner().prefill([ids])
     _, built = LeanRunner(cold.model).prefill([ids])
     assert torch.equal(direct, built)  # the same inputs to the lean path, bit for bit
-    # reference: transformers' own forward pass over the prompt (issue 2's 1e-4 tolerance)
+    # reference: transformers' own forward pass over the prompt (the project's 1e-4 tolerance)
     assert float((direct[0] - reference_logits(cold.model, ids)[0, -1]).abs().max()) < 1e-4
     assert torch.equal(reference_logits(warm.model, ids), reference_logits(cold.model, ids))  # loaded lazily
     assert warm.loaded_model is not None

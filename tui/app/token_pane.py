@@ -19,8 +19,8 @@ from textual.widgets import Static
 
 from tui.app.colouring import FORCED_MARK, PROMPT_STYLE, Scheme
 from tui.app.safe_text import shown, shown_line
-from tui.session.record import StepRecord
-from tui.session.views import PaneView, mean_logprob
+from tui.session.record import StepRecord, mean_logprob
+from tui.session.views import PaneView
 
 PROMPT_TAIL_LINES = 2  # about this many lines of the prompt's end show above the text
 
@@ -59,7 +59,7 @@ def status_text(records: tuple[StepRecord, ...] | list[StepRecord], total: int,
     if not records:
         return Text("step 0 \u00b7 no tokens yet", style="dim")
     last = records[-1]
-    lp = mean_logprob(records)
+    lp = mean_logprob(r.logprob for r in records)
     parts = [f"step {len(records)}" + (f"/{total}" if total != len(records) else ""),
              f"kept {last.kept}", f"H {abs(last.final_entropy):.2f}",
              f"logp {lp:.2f}" if math.isfinite(lp) else "logp -inf"]

@@ -12,7 +12,7 @@ import torch
 
 from tui.bench.step import Row, interleaved_steps, ms, verdict
 
-TOL = 1e-4  # issue 2: logits within 1e-4 of transformers' forward, in float32
+TOL = 1e-4  # the parity target: logits within 1e-4 of transformers' forward, in float32
 
 
 def greedy_rows(runner: Any, contexts: Sequence[Sequence[int]], steps: int) -> torch.Tensor:

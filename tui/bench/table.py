@@ -4,7 +4,7 @@
 
 Prints one plain-text table, one row per measurement. Every ratio is computed from
 numbers measured in the same run with the variants interleaved (timings on this shared
-2-core machine swing 20-30% between runs), and each target from issue 2 gets PASS or
+2-core machine swing 20-30% between runs), and each target gets PASS or
 MISS beside it. Sections: parity of the lean path on the real model, decode step time
 (1/2/4/8 panes, context ~50 and ~400), prefill, matmul layouts tried, threads, the
 4-recipe run against transformers' generate(), the recipe math's share of a step,

@@ -3,7 +3,7 @@
 Nucleus sampling, typical sampling and the inverse-CDF draw all ask the same
 question: walk the tokens in some order (by a key, ties by position) and stop at
 the first one where the accumulated mass reaches a target. A full sort of 49,152
-numbers costs 2-4 ms on this machine. `first_reaching` instead drops the keys into
+numbers costs 2-4 ms on a 2-core CPU. `first_reaching` instead drops the keys into
 equal-width bins, adds the mass per bin in one pass, finds the bin where the
 running total crosses the target, and repeats inside that bin until a few hundred
 candidates are left to sort: a handful of O(n) passes.

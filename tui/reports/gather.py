@@ -13,6 +13,7 @@ import math
 from dataclasses import dataclass
 from pathlib import Path
 
+from tui.session.record import mean_logprob, perplexity
 from tui.transcripts.headers import PaneHeader, TranscriptHeader
 from tui.transcripts.reader import StoredSession
 
@@ -51,13 +52,14 @@ class PaneReport:
 
     @property
     def mean_logprob(self) -> float:
-        lps = [math.log(r.raw_prob) if r.raw_prob > 0 else -math.inf for r in self.rows]
-        return sum(lps) / len(lps) if lps else math.nan
+        return mean_logprob(self._logprobs())
 
     @property
     def perplexity(self) -> float:
-        lp = self.mean_logprob
-        return math.exp(-lp) if math.isfinite(lp) else math.inf if self.rows else math.nan
+        return perplexity(self._logprobs())
+
+    def _logprobs(self) -> list[float]:
+        return [math.log(r.raw_prob) if r.raw_prob > 0 else -math.inf for r in self.rows]
 
     def mean(self, field: str) -> float:
         vals = [float(getattr(r, field)) for r in self.rows]

@@ -7,8 +7,9 @@ serialises to JSON without help. No torch, no Textual.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
-from typing import Any, Callable, Sequence
+from typing import Any, Callable, Iterable, Sequence
 
 TOP_N = 20  # how many of the most likely raw tokens each record keeps
 
@@ -18,6 +19,18 @@ STOP_STRING = "stop string"
 STOP_LENGTH = "length"
 STOP_CONTEXT = "context full"
 STOP_REASONS = (STOP_EOS, STOP_STRING, STOP_LENGTH, STOP_CONTEXT)
+
+
+def mean_logprob(logprobs: Iterable[float]) -> float:
+    """Mean natural-log probability per token; NaN for no tokens (the one definition)."""
+    values = list(logprobs)
+    return math.fsum(values) / len(values) if values else math.nan
+
+
+def perplexity(logprobs: Iterable[float]) -> float:
+    """exp(-mean natural-log probability per token); NaN for no tokens, inf for a zero one."""
+    lp = mean_logprob(logprobs)
+    return math.nan if math.isnan(lp) else math.exp(-lp) if lp > -math.inf else math.inf
 
 
 @dataclass(frozen=True, slots=True)
@@ -57,8 +70,6 @@ class StepRecord:
     @property
     def logprob(self) -> float:
         """Natural log of the raw probability (the model's own likelihood)."""
-        import math
-
         return math.log(self.raw_prob) if self.raw_prob > 0 else float("-inf")
 
     def to_json(self) -> dict[str, Any]:

@@ -7,9 +7,7 @@ is why this module imports nothing heavy.
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass
-from typing import Sequence
 
 from tui.session.record import StepRecord
 
@@ -47,10 +45,3 @@ class SessionView:
     @property
     def finished(self) -> bool:
         return all(p.stop is not None for p in self.panes)
-
-
-def mean_logprob(records: Sequence[StepRecord]) -> float:
-    """Mean natural-log raw probability of the chosen tokens (nan for no tokens)."""
-    if not records:
-        return math.nan
-    return sum(r.logprob for r in records) / len(records)

@@ -222,16 +222,6 @@ def self_bleu(texts: Sequence[str], *, sources: Sequence[Hashable] | None = None
 
 # --- likelihood ------------------------------------------------------------------
 
-def mean_logprob(logprobs: Sequence[float]) -> float:
-    """Mean natural-log probability per token; NaN for no tokens."""
-    return float(np.mean(np.asarray(logprobs, dtype=np.float64))) if len(logprobs) else math.nan
-
-
-def perplexity(logprobs: Sequence[float]) -> float:
-    """exp(-mean natural-log probability per token); NaN for no tokens."""
-    return float(np.exp(-mean_logprob(logprobs)))
-
-
 # --- one recipe's samples ----------------------------------------------------------
 
 @dataclass(frozen=True, slots=True)
