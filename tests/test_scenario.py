@@ -82,3 +82,19 @@ def test_bad_scenario_on_the_command_line_exits_2_without_traceback(tmp_path):
     lines = out.stderr.strip().splitlines()
     assert len(lines) == 1 and lines[0].startswith(f"error: {path}: pane[1].recipe: ")
     assert "Traceback" not in out.stderr
+
+
+def test_run_writes_a_transcript_that_reads_back(tmp_path, tiny_model_dir):
+    # the `run` command end to end on the tiny model: the file it writes is a transcript
+    # that the reader accepts, with every pane's steps (format: README "Transcript format")
+    from tui.transcripts.reader import StoredSession
+
+    path = write(tmp_path, GOOD)
+    out_file = tmp_path / "run.jsonl"
+    out = subprocess.run([sys.executable, "-m", "tui", "run", str(path), "--steps", "3",
+                          "--model", str(tiny_model_dir), "--out", str(out_file)],
+                         capture_output=True, text=True)
+    assert out.returncode == 0, out.stderr
+    stored = StoredSession.open(out_file)
+    assert stored.steps == 3 and [p.recipe for p in stored.header.panes] == ["top_p=0.9"]
+    assert f"transcript: {out_file}" in out.stderr

@@ -32,8 +32,11 @@ def main(args: argparse.Namespace) -> int:
     if args.seed is not None and args.seed < 0:
         raise UserError(f"--seed: must be >= 0, got {args.seed}")
 
+    from tui.commands.progress_display import ProgressDisplay
     from tui.model.catalogue import DEFAULT_MODEL, load_model
+    from tui.progress import ProgressEvent
     from tui.session.opening import open_session
+    from tui.files import write_atomic
     from tui.transcripts import format as transcript
     model_name = args.model or scenario.model or DEFAULT_MODEL
     lm = load_model(model_name, dtype=args.dtype, allow_pickle=args.allow_pickle)
@@ -41,18 +44,17 @@ def main(args: argparse.Namespace) -> int:
     steps = min(args.steps or scenario.max_new_tokens, scenario.max_new_tokens)
     times: list[float] = []
     tokens = 0
-    for i in range(steps):
-        start = time.perf_counter()
-        out = engine.step()
-        if not out:
-            break
-        times.append(time.perf_counter() - start)
-        tokens += len(out)
-        if sys.stderr.isatty():
-            print(f"\rstep {i + 1}/{steps}  panes live {len(out)}", end="", file=sys.stderr,
-                  flush=True)
-    if sys.stderr.isatty():
-        print(file=sys.stderr)
+    with ProgressDisplay(log_every=float("inf")) as display:  # a bar on a terminal only
+        for i in range(steps):
+            start = time.perf_counter()
+            out = engine.step()
+            if not out:
+                break
+            times.append(time.perf_counter() - start)
+            tokens += len(out)
+            if display.interactive:
+                display.update(ProgressEvent("run", i + 1, steps, "steps",
+                                             f"{len(out)} panes live"))
 
     view = engine.view()
     if args.out:
@@ -61,7 +63,7 @@ def main(args: argparse.Namespace) -> int:
             transcript.write_stream(sys.stdout, text_lines)
         else:
             try:
-                transcript.write_atomic(args.out, text_lines)
+                write_atomic(args.out, text_lines)
             except OSError as exc:
                 raise UserError(f"{args.out}: cannot write the transcript: "
                                 f"{exc.strerror or exc}") from None
