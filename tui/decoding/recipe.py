@@ -9,7 +9,7 @@ mutable part (mirostat's mu) lives in a `Sampler`, one per pane.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Iterable, Sequence
+from typing import TYPE_CHECKING, Any, Iterable, Sequence
 
 import numpy as np
 
@@ -79,8 +79,25 @@ class Recipe:
         """The input and the result after every stage, for the inspect view."""
         return Sampler(self.stages).trace(logits, history)
 
+    def generate_kwargs(self) -> dict[str, Any]:
+        """Keyword arguments that make ``model.generate(ids, **kwargs, max_new_tokens=...)``
+        sample from exactly this recipe's distribution at every step.
+
+        They hold the recipe's processors and switch off every stage generate() would
+        add from the model's generation_config.json or its own defaults. Call it anew
+        for each generate() call (mirostat keeps its state in the processors).
+        """
+        from tui.decoding.hf import generate_kwargs
+
+        return generate_kwargs(self)
+
     def as_logits_processor(self) -> LogitsProcessorList:
-        """A transformers LogitsProcessorList doing the same inside `model.generate()`."""
+        """The recipe's stages as a transformers LogitsProcessorList, in order.
+
+        Not enough on its own: generate() appends its own sampling stages after a
+        custom list (the global ``top_k=50`` and whatever the model's
+        generation_config.json sets). Use `generate_kwargs()`, which holds this list.
+        """
         from tui.decoding.hf import as_logits_processor
 
         return as_logits_processor(self)
