@@ -59,6 +59,19 @@ class Recipe:
         return len(self.stages)
 
     @property
+    def keeps_one_token(self) -> bool:
+        """True when the final distribution holds one token at every step, whatever the
+        logits (a `greedy` stage): every draw then gives the same text, so one sample
+        stands for any number of them. (top_k=1 keeps every token tied at the top.)"""
+        return any(isinstance(stage, Greedy) for stage in self.stages)
+
+    @property
+    def after_greedy(self) -> tuple[Stage, ...]:
+        """The stages after the first `greedy`: they receive one token and can change nothing."""
+        at = next((i for i, s in enumerate(self.stages) if isinstance(s, Greedy)), None)
+        return () if at is None else self.stages[at + 1:]
+
+    @property
     def is_stateful(self) -> bool:
         """True when a stage keeps state between steps (so panes need their own sampler)."""
         return any(stage.stateful for stage in self.stages)
