@@ -124,7 +124,8 @@ def compute_results(title: str, recipes: Sequence[str], prompts: int,
                                  + ("" if scope is None else f" for prompt {scope + 1}"))
             if recipe in fixed_recipes:
                 m = measure_samples(_stand_in(group, samples_per_prompt), n_resamples=n_resamples, seed=seed)
-                measured.append(replace(m, n_samples=len(group)))  # n: what ran
+                ran = {reason: sum(s.ending == reason for s in group) for reason in STOP_REASONS}
+                measured.append(replace(m, n_samples=len(group), endings=ran))  # n, endings: what ran
             else:
                 measured.append(measure_samples(group, n_resamples=n_resamples, seed=seed))
         points = [(getattr(m, DIVERSITY).estimate, getattr(m, LIKELIHOOD).estimate)
