@@ -31,16 +31,16 @@ class RepetitionPenalty(Stage):
     """Penalise every token that occurs in the history, once however often it occurs:
     a positive logit is divided by theta, a negative one multiplied by theta.
 
-    This is the rule of transformers' RepetitionPenaltyLogitsProcessor (and of the
-    inference servers that follow it), so an exported recipe does exactly this. It
-    comes from penalized sampling in CTRL (Keskar et al. 2019), whose formula divides
-    every penalised logit by theta. That literal rule is not used: for a negative
-    logit it *raises* the token toward 0, so a larger penalty makes repetition more
-    likely (on a model whose logits are all negative, a repeated token can go from a
-    few percent to nearly certain), and adding a constant to every logit changes the
-    result. The two rules agree whenever the penalised logits are >= 0. For theta > 1
-    a repeated token never gains on an unrepeated one; theta = 1 changes nothing;
-    theta < 1 rewards repetition.
+    This is the rule of transformers' RepetitionPenaltyLogitsProcessor (5.24.0), so
+    a recipe exported to generate() does exactly what the pane showed. It comes from
+    penalized sampling in CTRL (Keskar et al. 2019), whose formula divides every
+    penalised logit by theta. That literal formula is not used: for a negative logit it
+    *raises* the token toward 0, so a larger penalty makes repetition more likely (on
+    a model whose logits are all negative, a repeated token can go from a few percent
+    to nearly certain). The two rules agree whenever the penalised logits are >= 0.
+    Neither is unchanged by adding a constant to every logit (the sign decides), but
+    under this one, for theta > 1, a repeated token never gains on an unrepeated one;
+    theta = 1 changes nothing; theta < 1 rewards repetition.
     """
 
     theta: float
