@@ -95,6 +95,11 @@ def test_processors_are_transformers_own_where_the_rules_agree() -> None:
     assert [type(p) for p in Recipe.parse("mirostat=4 top_k=0 temperature=1").as_logits_processor()] == [
         MirostatLogitsProcessor
     ]  # stages that change nothing are left out
+    # transformers' NoRepeatNGramLogitsProcessor leaves no token when the ban covers every
+    # one left (generate() then fails), so the ban is ours (see test_generate_kwargs.py)
+    assert [type(p) for p in Recipe.parse("no_repeat_ngram=2 no_repeat_ngram=0").as_logits_processor()] == [
+        StageLogitsProcessor
+    ]
 
 
 def test_generation_config_expresses_what_it_can() -> None:

@@ -38,6 +38,7 @@ RECIPES = [
     "top_p=0.95 temperature=1.5 min_p=0.02",
     "greedy",
     "top_k=1",
+    "top_k=1 no_repeat_ngram=1",  # a ban that would leave nothing: the most likely stays
     "temperature=0.9 mirostat(tau=3,eta=0.3)",
     "mirostat(tau=2,eta=1) top_p=0.9",
 ]

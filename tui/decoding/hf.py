@@ -10,10 +10,11 @@ generation_config.json and then from its global defaults (``top_k=50``).
 `as_logits_processor` is the recipe's part of that: the stages, in order. It uses
 transformers' own processors where their rule is ours on every input they accept
 (TemperatureLogitsWarper, TopKLogitsWarper, MinPLogitsWarper, TypicalLogitsWarper,
-RepetitionPenaltyLogitsProcessor, NoRepeatNGramLogitsProcessor) and our stages,
-wrapped, for the rest: where transformers has none (greedy, presence and frequency
-penalties, mirostat) and where its rule differs (top_p ties, epsilon and eta at the
-threshold; see the stage docstrings).
+RepetitionPenaltyLogitsProcessor) and our stages, wrapped, for the rest: where
+transformers has none (greedy, presence and frequency penalties, mirostat) and where
+its rule differs (top_p ties, epsilon and eta at the threshold, and a no_repeat_ngram
+ban that would leave no token, where NoRepeatNGramLogitsProcessor leaves every score
+at -inf and generate() fails; see the stage docstrings).
 
 `to_generation_config` maps what GenerationConfig's fields can say. It cannot say
 the stages it has no field for, nor an order other than transformers' fixed one;
@@ -37,7 +38,6 @@ from transformers import (
     LogitsProcessor,
     LogitsProcessorList,
     MinPLogitsWarper,
-    NoRepeatNGramLogitsProcessor,
     RepetitionPenaltyLogitsProcessor,
     TemperatureLogitsWarper,
     TopKLogitsWarper,
@@ -146,8 +146,8 @@ def processor_for(stage: Stage) -> LogitsProcessor | None:
         return TypicalLogitsWarper(stage.mass) if stage.mass < 1 else None
     if isinstance(stage, RepetitionPenalty):
         return RepetitionPenaltyLogitsProcessor(stage.theta) if stage.theta != 1.0 else None
-    if isinstance(stage, NoRepeatNGram):
-        return NoRepeatNGramLogitsProcessor(stage.n) if stage.n > 0 else None
+    if isinstance(stage, NoRepeatNGram) and stage.n == 0:
+        return None
     if isinstance(stage, MirostatV2):
         return MirostatLogitsProcessor(stage)
     return StageLogitsProcessor(stage)
