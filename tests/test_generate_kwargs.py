@@ -125,3 +125,24 @@ def test_callers_keywords_work_beside_it_and_each_call_is_fresh() -> None:
     for key in ("max_new_tokens", "max_length", "output_scores", "output_logits", "return_dict_in_generate",
                 "pad_token_id", "eos_token_id", "num_return_sequences", "attention_mask", "streamer"):
         assert key not in first
+
+
+def test_every_stage_a_generation_config_json_can_add_is_switched_off() -> None:
+    # reference: transformers 5.24.0 GenerationMixin._get_logits_processor and
+    # get_generation_mode: each field below adds a processor or changes the search
+    lm = tiny_llama(bos_token_id=None, eos_token_id=None, pad_token_id=0)
+    lm.generation_config.update(
+        do_sample=False, num_beams=3, min_p=0.3, typical_p=0.5, epsilon_cutoff=0.01, eta_cutoff=0.01,
+        no_repeat_ngram_size=1, suppress_tokens=[3, 4], begin_suppress_tokens=[5], bad_words_ids=[[7]],
+        sequence_bias={(8,): 5.0}, forced_bos_token_id=9, renormalize_logits=True, **MODEL_DEFAULTS)
+    recipe = Recipe.parse("top_p=0.9")
+    torch.manual_seed(2)
+    out = lm.generate(PROMPTS, attention_mask=torch.ones_like(PROMPTS), **recipe.generate_kwargs(),
+                      max_new_tokens=4, output_scores=True, output_logits=True, return_dict_in_generate=True)
+    start = PROMPTS.shape[1]
+    for step in range(4):
+        for row in range(2):
+            ours = recipe.distribution(out.logits[step][row].numpy(), out.sequences[row, : start + step].numpy())
+            scores = out.scores[step][row]
+            assert np.array_equal(torch.isfinite(scores).numpy(), ours > 0), (step, row)
+            np.testing.assert_allclose(torch.softmax(scores.double(), -1).numpy(), ours, rtol=0, atol=1e-6)
