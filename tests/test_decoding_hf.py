@@ -20,6 +20,7 @@ from transformers import (
     LogitsProcessor,
     LogitsProcessorList,
     MinPLogitsWarper,
+    RepetitionPenaltyLogitsProcessor,
     TemperatureLogitsWarper,
     TopKLogitsWarper,
 )
@@ -87,12 +88,18 @@ def test_generate_keeps_the_same_sets_as_our_chain(tiny_model: LlamaForCausalLM,
 
 
 def test_processors_are_transformers_own_where_the_rules_agree() -> None:
-    kinds = [type(p) for p in Recipe.parse("temperature=0.7 top_k=20 min_p=0.1 top_p=0.9 greedy").as_logits_processor()]
-    assert kinds == [TemperatureLogitsWarper, TopKLogitsWarper, MinPLogitsWarper, StageLogitsProcessor,
-                     StageLogitsProcessor]
+    kinds = [type(p) for p in Recipe.parse(
+        "repetition_penalty=1.2 temperature=0.7 top_k=20 min_p=0.1 top_p=0.9 greedy").as_logits_processor()]
+    assert kinds == [RepetitionPenaltyLogitsProcessor, TemperatureLogitsWarper, TopKLogitsWarper,
+                     MinPLogitsWarper, StageLogitsProcessor, StageLogitsProcessor]
     assert [type(p) for p in Recipe.parse("mirostat=4 top_k=0 temperature=1").as_logits_processor()] == [
         MirostatLogitsProcessor
     ]  # stages that change nothing are left out
+    # transformers' NoRepeatNGramLogitsProcessor leaves no token when the ban covers every
+    # one left (generate() then fails), so the ban is ours (see test_generate_kwargs.py)
+    assert [type(p) for p in Recipe.parse("no_repeat_ngram=2 no_repeat_ngram=0").as_logits_processor()] == [
+        StageLogitsProcessor
+    ]
 
 
 def test_generation_config_expresses_what_it_can() -> None:
@@ -116,12 +123,16 @@ def test_generation_config_names_what_it_leaves_out() -> None:
     assert "temperature=2 (second temperature stage)" in message
     # transformers 5.24.0 applies temperature before top_p whatever the recipe says
     assert "temperature=0.7 will run before top_p=0.9" in message
-    assert "repetition_penalty=1.1 multiplies negative logits" in message
+    # and the penalty first: before top_p that changes the result, before temperature it cannot
+    assert "repetition_penalty=1.1 will run before top_p=0.9" in message
+    assert "repetition_penalty=1.1 will run before temperature=0.7" not in message
+    assert "repetition_penalty" not in message.replace("repetition_penalty=1.1 will run before top_p=0.9", "")
     assert (config.top_p, config.temperature, config.repetition_penalty) == (0.9, 0.7, 1.1)
 
 
 def test_generation_config_for_greedy() -> None:
-    with pytest.warns(RecipeWarning, match="multiplies negative logits"):
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # the penalty is transformers' own rule: nothing is lost
         config = Recipe.parse("repetition_penalty=1.2 temperature=0.5 greedy top_k=3").to_generation_config()
     assert config.do_sample is False and config.repetition_penalty == 1.2
     assert config.temperature is None and config.top_k is None  # cannot change the argmax: left out

@@ -3,9 +3,10 @@
 Reference library: transformers 5.24.0 (transformers/generation/logits_process.py),
 run on float64 tensors. Each stage alone and chains in random orders must keep the
 same token set and give the same final probabilities to 1e-9. The documented
-differences (top_p ties, the paper's strict > for epsilon and eta, Keskar et al.'s
-repetition penalty on negative logits, n-gram bans that would leave nothing) are
-tested as two facts each: what the library does and what the paper says.
+differences (top_p ties, the paper's strict > for epsilon and eta, n-gram bans that
+would leave nothing) are tested as two facts each: what the library does and what the
+paper says. The repetition penalty follows the library's sign rule, not CTRL's literal
+formula; its tests say why.
 """
 
 from __future__ import annotations
@@ -70,11 +71,9 @@ def logit_vectors(draw: st.DrawFn, kinds: tuple[str, ...] = ("normal", "peaked",
 
 
 def history_for(x: np.ndarray, draw: st.DrawFn) -> list[int]:
-    """A history of tokens with logit >= 0 or -inf (where the two repetition rules agree),
-    drawn from a small pool so that n-grams repeat."""
-    pool = np.flatnonzero((x >= 0) | np.isneginf(x))
-    if pool.size == 0:
-        return []
+    """A history of tokens of any logit (positive, negative, -inf), drawn from a small
+    pool so that n-grams repeat."""
+    pool = np.arange(x.size)
     rng = np.random.default_rng(draw(st.integers(0, 2**32 - 1)))
     pool = rng.choice(pool, size=min(pool.size, 4), replace=False)
     return [int(t) for t in rng.choice(pool, size=draw(st.integers(0, 30)))]
@@ -259,19 +258,64 @@ def test_eta_formula_matches_transformers_on_a_worked_example() -> None:
     assert_same(ours[:2], run_reference([Eta(0.002)], x, []))
 
 
-def test_repetition_penalty_on_negative_logits() -> None:
-    x = np.array([2.0, -1.0, 0.5])
-    history = [0, 1, 0]
-    # Keskar et al. 2019 (CTRL): every penalised logit is divided by theta, once
-    expected_paper = np.array([1.0, -0.5, 0.5])
-    ours = Recipe.of([RepetitionPenalty(2.0)]).distribution(x, history)
-    np.testing.assert_allclose(ours, np.exp(expected_paper) / np.exp(expected_paper).sum(), rtol=1e-12)
-    # transformers 5.24.0 RepetitionPenaltyLogitsProcessor multiplies negative logits instead
-    scores = RepetitionPenaltyLogitsProcessor(2.0)(torch.tensor([history]), torch.from_numpy(x[None]))
-    assert scores[0].tolist() == [1.0, -2.0, 0.5]
-    # where every penalised logit is >= 0 the two rules agree
-    ours_pos = Recipe.of([RepetitionPenalty(2.0)]).distribution(x, [0, 2])
-    np.testing.assert_allclose(ours_pos, run_reference([RepetitionPenalty(2.0)], x, [0, 2])[1], atol=1e-12)
+@pytest.mark.parametrize(
+    ("signs", "x"),
+    [("negative", [-0.5, -1.0, -2.0, -3.5, -7.0]), ("positive", [3.0, 0.5, 1.0, 2.5, 0.25]),
+     ("mixed", [2.0, 1.0, -1.0, -3.0, 0.0])],
+)
+@pytest.mark.parametrize("theta", [0.6, 1.2, 5.0])
+def test_repetition_penalty_equals_transformers_on_every_sign(signs: str, x: list[float], theta: float) -> None:
+    # reference: transformers 5.24.0 RepetitionPenaltyLogitsProcessor (divide positive
+    # logits by theta, multiply negative ones), float64 scores
+    logits = np.array(x)
+    history = [2, 4, 2, 0]  # a logit of each sign is repeated in the mixed row (0 stays 0)
+    scores = RepetitionPenaltyLogitsProcessor(theta)(torch.tensor([history]), torch.from_numpy(logits[None]))
+    theirs = torch.softmax(scores[0], dim=-1).numpy()
+    ours = Recipe.of([RepetitionPenalty(theta)]).distribution(logits, history)
+    np.testing.assert_allclose(ours, theirs, rtol=0, atol=1e-15)
+    # and the same after a top_k left only some tokens in play (positions, not ids)
+    kept, probs = run_reference([TopK(3), RepetitionPenalty(theta)], logits, history)
+    assert_same(run_ours([TopK(3), RepetitionPenalty(theta)], logits, history)[:2], (kept, probs))
+
+
+def test_repetition_penalty_lowers_a_repeated_token_with_negative_logits() -> None:
+    # the case Keskar et al.'s literal rule (divide every penalised logit) gets backwards:
+    # logits [2, 1, -1, -3], token 2 repeated; hand computation, softmax of the raw logits
+    x = np.array([2.0, 1.0, -1.0, -3.0])
+    raw = float(np.exp(-1.0) / np.exp(x).sum())
+    assert round(raw, 3) == 0.035
+    shares = [Recipe.of([RepetitionPenalty(t)]).distribution(x, [2])[2] for t in (1.0, 1.2, 5.0)]
+    assert shares[0] == pytest.approx(raw, rel=1e-12)
+    assert shares[0] > shares[1] > shares[2]  # a larger penalty, a rarer repetition
+    # the paper's literal division would give -1 / 1.2 = -0.83 and -1 / 5 = -0.2: higher
+    literal = np.array([2.0, 1.0, -1.0 / 5.0, -3.0])
+    assert np.exp(literal[2]) / np.exp(literal).sum() > raw
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    logits=st.lists(st.floats(-30.0, 30.0), min_size=2, max_size=40),
+    shift=st.floats(-50.0, 50.0),
+    theta=st.floats(1.0, 10.0, exclude_min=True),
+    data=st.data(),
+)
+def test_repetition_penalty_never_favours_a_repeated_token(logits, shift, theta, data) -> None:
+    # property of the trade's rule (transformers 5.24.0 RepetitionPenaltyLogitsProcessor):
+    # for theta > 1 a repeated token's probability never rises relative to any unrepeated
+    # token's, whatever the signs and whatever constant is added to every logit
+    x = np.array(logits) + shift
+    repeated = data.draw(st.lists(st.integers(0, x.size - 1), min_size=1, max_size=x.size))
+    before = Recipe.parse("").distribution(x)
+    after = Recipe.of([RepetitionPenalty(theta)]).distribution(x, repeated)
+    seen = np.zeros(x.size, dtype=bool)
+    seen[repeated] = True
+    # compare ratios through logs: log p_rep - log p_other may only fall (tolerance for rounding)
+    with np.errstate(divide="ignore"):
+        gap_before = np.log(before[seen])[:, None] - np.log(before[~seen])[None, :]
+        gap_after = np.log(after[seen])[:, None] - np.log(after[~seen])[None, :]
+    finite = np.isfinite(gap_before) & np.isfinite(gap_after)
+    assert np.all(gap_after[finite] <= gap_before[finite] + 1e-9)
+    # (its own probability may still rise, when another repeated token loses more)
 
 
 def test_ngram_ban_that_would_leave_nothing() -> None:

@@ -238,6 +238,23 @@ def test_recipe_check_explains_each_stage(capsys: pytest.CaptureFixture[str]) ->
     assert lines[2].startswith("  2. greedy")
 
 
+def test_recipe_check_warns_about_stages_after_greedy(capsys: pytest.CaptureFixture[str]) -> None:
+    assert run_command(["check", "greedy top_p=0.9"]) == 0
+    out, err = capsys.readouterr()
+    assert out == "greedy top_p=0.9\n"
+    assert err == "warning: top_p=0.9: after greedy, which keeps one token, this stage changes nothing\n"
+    # the warning is true: greedy keeps one token and a truncating stage keeps at least one
+    # (the README's rule for every truncating stage), so what follows greedy changes nothing
+    x = np.random.default_rng(4).standard_normal(50)
+    after = "top_p=0.9 temperature=2 repetition_penalty=0.5 mirostat=1 greedy"
+    assert Recipe.parse("greedy " + after).distribution(x, [1, 2]).tolist() == Recipe.parse(
+        "greedy").distribution(x, [1, 2]).tolist()
+    assert run_command(["check", "top_p=0.9 greedy"]) == 0
+    assert capsys.readouterr().err == ""  # before greedy no word: a penalty or typical_p there can change the token
+    assert Recipe.parse("greedy").after_greedy == () and Recipe.parse("top_k=3").after_greedy == ()
+    assert Recipe.parse("greedy").keeps_one_token and not Recipe.parse("top_k=1").keeps_one_token
+
+
 def test_recipe_check_reports_errors_with_status_2(capsys: pytest.CaptureFixture[str]) -> None:
     assert run_command(["check", "top_p=1.5"]) == 2
     out, err = capsys.readouterr()

@@ -20,7 +20,7 @@ from pathlib import Path
 
 PACKAGE = Path(__file__).resolve().parents[1] / "tui"
 
-FLOOR = {"tui", "tui.errors", "tui.files", "tui.progress", "tui.token_style"}
+FLOOR = {"tui", "tui.errors", "tui.files", "tui.numbers", "tui.progress", "tui.token_style"}
 MAY_IMPORT: dict[str, set[str]] = {
     "decoding": set(),
     "model": set(),
@@ -130,7 +130,7 @@ def test_every_room_in_the_table_exists_and_every_room_is_in_the_table():
 
 
 def test_at_most_eight_modules_stay_loose_at_the_top():
-    loose = sorted(p.name for p in PACKAGE.glob("*.py"))
+    loose = sorted(p.name for p in PACKAGE.glob("*.py") if p.name != "__init__.py")
     assert len(loose) <= MAX_LOOSE, loose
 
 

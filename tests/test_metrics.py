@@ -326,3 +326,21 @@ def test_measure_samples_refuses_empty_or_mixed_input():
         measure_samples([])
     with pytest.raises(ValueError, match="several recipes: greedy, top_p=0.9"):
         measure_samples([RECORDS[0], _record(0, 3, [1], "x", recipe="greedy")])
+
+
+def test_identical_samples_give_point_intervals():
+    # greedy x3: the same text three times. distinct-2 by hand (Li et al. 2016): the
+    # sample's 3 bigrams are all different, pooled over 3 copies: 3 / 9 = 1/3. Nothing
+    # varies, so the bootstrap's sampling distribution is a point and so is the interval
+    # (before: 0.333 [0.260, 0.927], an artefact of the copy rule).
+    same = [_record(0, i, [1, 2, 3, 4], "the lamp was lit", recipe="greedy") for i in range(3)]
+    m = measure_samples(same, n_resamples=200)
+    assert m.distinct_2.estimate == pytest.approx(1 / 3)
+    for name in MEASURE_NAMES:
+        interval = getattr(m, name)
+        assert interval.low == interval.estimate == interval.high, name
+    # one prompt that varies is enough for real intervals again
+    varied = same + [_record(1, 0, [5, 6, 7], "fog", recipe="greedy"),
+                     _record(1, 1, [5, 8, 9], "rain", recipe="greedy")]
+    assert measure_samples(varied, n_resamples=200).distinct_2.low < measure_samples(
+        varied, n_resamples=200).distinct_2.high

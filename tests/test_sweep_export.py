@@ -92,10 +92,16 @@ def test_the_python_snippet_runs_and_keeps_our_token_sets(lm):
     assert rc == 0, err
     namespace: dict = {}
     exec(compile(snippet, "<export snippet>", "exec"), namespace)  # the snippet as printed
-    processors = namespace["logits_processor"]
+    call = next(line for line in snippet.splitlines() if "model.generate(" in line).lstrip("# ")
+    namespace.update(model=lm.model, inputs={"input_ids": torch.tensor([lm.encode_prompt(PROMPT, None)])})
     for seed in (0, 3):
-        prompt, out = generate(lm, namespace["generation_config"], seed, processors)
-        assert assert_same_kept_sets(str(Recipe.parse(recipe)), prompt, out) >= 2
+        torch.manual_seed(seed)
+        # the commented call, as printed, with the outputs the check needs
+        exec(call.replace("max_new_tokens=64)", "max_new_tokens=8, output_scores=True, output_logits=True, "
+                                                  f"return_dict_in_generate=True, pad_token_id={lm.eos_ids[0]})"),
+             namespace)
+        prompt = namespace["inputs"]["input_ids"][0].tolist()
+        assert assert_same_kept_sets(str(Recipe.parse(recipe)), prompt, namespace["outputs"]) >= 2
 
 
 def test_export_mistakes_are_one_line(tmp_path):

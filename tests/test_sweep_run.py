@@ -88,25 +88,26 @@ def test_the_sweep_writes_every_file_and_prints_the_tables(swept):
 def test_the_numbers_follow_from_the_samples(swept):
     _, out, *_ = swept
     samples = SweepFolder.read(out).samples()
-    assert len(samples) == 2 * 4 * 2
+    assert len(samples) == 2 * (1 + 4)  # greedy keeps one token: one sample per prompt
     rows = results_rows(out)
     for recipe in ("greedy", "temperature=1 top_k=20"):
         mine = [s for s in samples if s.recipe == recipe]
+        copies = 4 if recipe == "greedy" else 1  # greedy's one sample stands for all 4 (README)
         # distinct-2 (Li et al. 2016): distinct bigrams / all bigrams, pooled per prompt, then
         # averaged over prompts (the README's definition); counted by hand here.
         per_prompt = []
         for p in range(2):
-            grams = [g for s in mine if s.prompt_index == p for g in bigrams(s.token_ids)]
+            grams = [g for s in mine if s.prompt_index == p for g in bigrams(s.token_ids)] * copies
             per_prompt.append(len(set(grams)) / len(grams))
         row = rows[(recipe, "all")]
         assert float(row["distinct_2"]) == pytest.approx(np.mean(per_prompt))
         logprobs = [x for s in mine for x in s.logprobs]
         assert float(row["mean_logprob"]) == pytest.approx(np.mean(logprobs))
         assert float(row["perplexity"]) == pytest.approx(math.exp(-np.mean(logprobs)))
-        assert sum(int(row[f"ended_{r.replace(' ', '_')}"]) for r in STOP_REASONS) == 8
+        assert sum(int(row[f"ended_{r.replace(' ', '_')}"]) for r in STOP_REASONS) == 8 // copies
         assert float(row["mean_logprob_low"]) <= float(row["mean_logprob"]) <= float(row["mean_logprob_high"])
         for p in range(2):
-            assert int(rows[(recipe, str(p + 1))]["n_samples"]) == 4
+            assert int(rows[(recipe, str(p + 1))]["n_samples"]) == (1 if recipe == "greedy" else 4)
     # two recipes: each is on the front unless the other beats it on both axes (definition)
     g, t = rows[("greedy", "all")], rows[("temperature=1 top_k=20", "all")]
     g_beats = float(g["distinct_2"]) >= float(t["distinct_2"]) and float(g["mean_logprob"]) >= float(t["mean_logprob"])
@@ -132,7 +133,23 @@ def test_greedy_rows_equal_transformers_greedy_generate(swept, lm):
         ref = lm.model.generate(ids, do_sample=False, max_new_tokens=10, eos_token_id=list(lm.eos_ids),
                                 pad_token_id=lm.eos_ids[0])
         rows = [list(s.token_ids) for s in greedy if s.prompt_index == p]
-        assert rows == [ref[0, ids.shape[1]:].tolist()] * 4
+        assert rows == [ref[0, ids.shape[1]:].tolist()]  # run once: 4 runs would be 4 copies
+
+
+def test_a_recipe_that_cannot_vary_runs_once_and_the_table_says_so(swept):
+    _, out, _, stdout, _ = swept
+    rows = results_rows(out)
+    for scope in ("all", "1", "2"):
+        g, t = rows[("greedy", scope)], rows[("temperature=1 top_k=20", scope)]
+        assert (g["fixed"], t["fixed"]) == ("1", "0")
+        # nothing varies, so every interval is the point (a degenerate sampling distribution)
+        for name in ("distinct_1", "distinct_2", "self_bleu", "mean_logprob", "repetition_4"):
+            assert g[f"{name}_low"] == g[name] == g[f"{name}_high"], (scope, name)
+        assert float(g["self_bleu"]) == pytest.approx(100.0)  # BLEU of a text against its copies (sacrebleu)
+        assert float(t["mean_logprob_low"]) < float(t["mean_logprob_high"])  # sampling does vary
+    assert "(fixed)" in stdout and "ran once per prompt" in stdout
+    md = (out / "results.md").read_text()
+    assert "| `greedy` | 2 (fixed) |" in md and "ran once per prompt" in md
 
 
 def test_logprobs_and_text_match_the_full_forward_pass(swept, lm):

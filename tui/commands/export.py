@@ -4,8 +4,9 @@
 GenerationConfig. GenerationConfig applies its stages in one fixed order and has no
 field for some of ours; when the recipe needs either, the command names what would
 be lost and fails (exit 2) unless `--lossy` is given. `--as python` prints a short
-snippet that builds the recipe's LogitsProcessorList for `model.generate`, which
-keeps the recipe whole (it needs logitfork installed where it runs).
+snippet that calls `model.generate` with `Recipe.generate_kwargs()`, which keeps
+the recipe whole and switches off the model's own sampling defaults (it needs
+logitfork installed where it runs).
 """
 
 from __future__ import annotations
@@ -28,20 +29,16 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def python_snippet(recipe_text: str) -> str:
-    """Python that builds `logits_processor` and a neutral `generation_config`."""
+    """Python that samples with the recipe inside `model.generate`."""
     return f'''# logitfork recipe {recipe_text!r} for transformers' generate(), in its stage order.
-from transformers import GenerationConfig
 from tui.decoding import Recipe
 
-logits_processor = Recipe.parse({recipe_text!r}).as_logits_processor()
-# generate()'s own sampling stages are switched off, so that the recipe alone shapes the
-# distribution (a model's generation_config.json may set some of them).
-generation_config = GenerationConfig(
-    do_sample=True, temperature=1.0, top_k=0, top_p=1.0, min_p=0.0, typical_p=1.0,
-    epsilon_cutoff=0.0, eta_cutoff=0.0, repetition_penalty=1.0, no_repeat_ngram_size=0,
-)
-# outputs = model.generate(**inputs, generation_config=generation_config,
-#                          logits_processor=logits_processor, max_new_tokens=64)
+recipe = Recipe.parse({recipe_text!r})
+# generate_kwargs() holds the recipe's processors and switches off every sampling stage
+# generate() would add itself (a model's generation_config.json may set some), so each
+# step samples from exactly the recipe's distribution. Call it anew for every generate()
+# call: mirostat keeps its state in it.
+# outputs = model.generate(**inputs, **recipe.generate_kwargs(), max_new_tokens=64)
 '''
 
 

@@ -1,7 +1,8 @@
 """`logitfork recipe check "TEXT"`: parse a recipe and print its canonical form.
 
 Exit status 0 with the canonical text on stdout, or 2 with ``error: <message>`` on
-stderr. `--explain` adds one line per stage. Nothing heavy is imported until the
+stderr. `--explain` adds one line per stage. A stage after `greedy` gets a
+``warning:`` line on stderr: greedy leaves one token, so it can change nothing. Nothing heavy is imported until the
 command runs (the decoding package needs only numpy).
 """
 
@@ -38,6 +39,12 @@ def main(args: argparse.Namespace) -> int:
         print(f"error: {exc}", file=sys.stderr)
         return 2
     print(str(recipe))
+    idle = recipe.after_greedy
+    if idle:
+        names = " ".join(stage.text() for stage in idle)
+        print(f"warning: {names}: after greedy, which keeps one token, "
+              f"{'this stage changes' if len(idle) == 1 else 'these stages change'} nothing",
+              file=sys.stderr)
     if getattr(args, "explain", False):
         if not recipe.stages:
             print("  (no stages: tokens are drawn from the model's own distribution)")

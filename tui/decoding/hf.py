@@ -1,17 +1,25 @@
-"""The bridge to transformers: a recipe as a LogitsProcessorList or a GenerationConfig.
+"""The bridge to transformers: a recipe inside generate(), or as a GenerationConfig.
 
-`as_logits_processor` does what the recipe does, in order, inside
-``model.generate(..., do_sample=True, logits_processor=...)``. It uses transformers'
-own processors where their rule is ours on every input they accept
+`generate_kwargs` gives the keyword arguments that make
+``model.generate(ids, **kwargs, max_new_tokens=...)`` sample from exactly the
+recipe's distribution at every step: the recipe's processors, and every field of
+generate() that would add a stage of its own switched off explicitly, since
+generate() fills any field a caller leaves unset from the model's
+generation_config.json and then from its global defaults (``top_k=50``).
+
+`as_logits_processor` is the recipe's part of that: the stages, in order. It uses
+transformers' own processors where their rule is ours on every input they accept
 (TemperatureLogitsWarper, TopKLogitsWarper, MinPLogitsWarper, TypicalLogitsWarper,
-NoRepeatNGramLogitsProcessor) and our stages, wrapped, for the rest: where
-transformers has none (greedy, presence and frequency penalties, mirostat) and
-where its rule differs (top_p ties, epsilon and eta at the threshold, repetition
-penalty on negative logits; see the stage docstrings).
+RepetitionPenaltyLogitsProcessor) and our stages, wrapped, for the rest: where
+transformers has none (greedy, presence and frequency penalties, mirostat) and where
+its rule differs (top_p ties, epsilon and eta at the threshold, and a no_repeat_ngram
+ban that would leave no token, where NoRepeatNGramLogitsProcessor leaves every score
+at -inf and generate() fails; see the stage docstrings).
 
 `to_generation_config` maps what GenerationConfig's fields can say. It cannot say
-the order (transformers applies its stages in one fixed order) nor the stages it
-has no field for; those are named in one `RecipeWarning`.
+the stages it has no field for, nor an order other than transformers' fixed one;
+those are named in one `RecipeWarning`, the order only where it changes the
+distribution (`COMMUTING` lists the pairs where it cannot).
 
 Imports torch and transformers; import this module only when you need it.
 Checked against transformers 5.24.0.
@@ -30,7 +38,7 @@ from transformers import (
     LogitsProcessor,
     LogitsProcessorList,
     MinPLogitsWarper,
-    NoRepeatNGramLogitsProcessor,
+    RepetitionPenaltyLogitsProcessor,
     TemperatureLogitsWarper,
     TopKLogitsWarper,
     TypicalLogitsWarper,
@@ -91,27 +99,32 @@ class MirostatLogitsProcessor(LogitsProcessor):
     """Mirostat v2 inside generate(): one mu per batch row.
 
     Each call first feeds the token that generate() appended since the last call
-    (the last column of `input_ids`) back into that row's mu. A call whose length
-    does not continue the last one starts over, so the object can serve several
-    generate() calls. Meant for sampling without beams.
+    (the last column of `input_ids`) back into that row's mu. A call whose
+    `input_ids` do not extend the last call's by one token starts over, so the object
+    can serve several generate() calls. Meant for sampling without beams.
     """
 
     def __init__(self, stage: MirostatV2) -> None:
         self.stage = stage
         self._mu: list[float] = []
         self._memos: list[Any] = []
-        self._length = -1
+        self._last_ids: torch.Tensor | None = None
+
+    def _continues(self, input_ids: torch.Tensor) -> bool:
+        last = self._last_ids
+        return (last is not None and input_ids.shape[0] == last.shape[0]
+                and input_ids.shape[1] == last.shape[1] + 1 and bool(torch.equal(input_ids[:, :-1], last)))
 
     def __call__(self, input_ids: torch.LongTensor, scores: torch.FloatTensor) -> torch.FloatTensor:
-        batch, length = input_ids.shape
-        if length == self._length + 1 and len(self._mu) == batch:
+        batch = input_ids.shape[0]
+        if self._continues(input_ids):
             for row in range(batch):
                 token = int(input_ids[row, -1])
                 self._mu[row] = self.stage.next_state(self._mu[row], self._memos[row], token)
         else:
             self._mu = [self.stage.initial_state()] * batch
             self._memos = [None] * batch
-        self._length = length
+        self._last_ids = input_ids.detach().clone()
         rows = []
         for row in range(batch):
             cands = _row_candidates(scores[row])
@@ -131,16 +144,60 @@ def processor_for(stage: Stage) -> LogitsProcessor | None:
         return MinPLogitsWarper(stage.min_p) if stage.min_p > 0 else None
     if isinstance(stage, TypicalP):
         return TypicalLogitsWarper(stage.mass) if stage.mass < 1 else None
-    if isinstance(stage, NoRepeatNGram):
-        return NoRepeatNGramLogitsProcessor(stage.n) if stage.n > 0 else None
+    if isinstance(stage, RepetitionPenalty):
+        return RepetitionPenaltyLogitsProcessor(stage.theta) if stage.theta != 1.0 else None
+    if isinstance(stage, NoRepeatNGram) and stage.n == 0:
+        return None
     if isinstance(stage, MirostatV2):
         return MirostatLogitsProcessor(stage)
     return StageLogitsProcessor(stage)
 
 
 def as_logits_processor(recipe: Recipe) -> LogitsProcessorList:
-    """A LogitsProcessorList that applies `recipe` in its order. Use with do_sample=True."""
+    """A LogitsProcessorList that applies `recipe` in its order.
+
+    Not enough on its own: generate() runs its own sampling stages after a custom
+    list (its global ``top_k=50``, and whatever the model's generation_config.json
+    sets). `generate_kwargs` switches those off; use it.
+    """
     return LogitsProcessorList(p for p in map(processor_for, recipe.stages) if p is not None)
+
+
+# Every GenerationConfig field (transformers 5.24.0) that makes generate() add a stage to
+# the per-step distribution, change the search, or change what output_scores holds, at
+# the value that switches it off. generate() takes a field from the model's
+# generation_config.json whenever the caller leaves it unset, so each is set here;
+# fields that only say when to stop (max_new_tokens, eos_token_id, ...) or what to
+# return are left to the caller.
+GENERATE_NEUTRAL: dict[str, Any] = {
+    # the search: one plain sampling chain (no beams, no assistant, no contrastive or DoLa)
+    "num_beams": 1, "num_beam_groups": 1, "penalty_alpha": None, "dola_layers": None,
+    "constraints": None, "force_words_ids": None, "prompt_lookup_num_tokens": None,
+    "assistant_early_exit": None, "use_mtp": None,
+    # the sampling stages of GenerationMixin._get_logits_processor
+    "temperature": 1.0, "top_k": 0, "top_p": 1.0, "min_p": None, "top_h": None, "typical_p": 1.0,
+    "epsilon_cutoff": 0.0, "eta_cutoff": 0.0,
+    # its other processors: penalties, bans, forced and suppressed tokens, length rules
+    "repetition_penalty": 1.0, "encoder_repetition_penalty": 1.0, "no_repeat_ngram_size": 0,
+    "encoder_no_repeat_ngram_size": 0, "bad_words_ids": None, "sequence_bias": None,
+    "guidance_scale": None, "min_length": 0, "min_new_tokens": None, "forced_bos_token_id": None,
+    "forced_eos_token_id": None, "remove_invalid_values": False,
+    "exponential_decay_length_penalty": None, "suppress_tokens": None,
+    "begin_suppress_tokens": None, "watermarking_config": None, "renormalize_logits": False,
+    "token_healing": False,
+}
+
+
+def generate_kwargs(recipe: Recipe) -> dict[str, Any]:
+    """Keyword arguments for ``model.generate(ids, **kwargs, ...)`` that sample from
+    exactly `recipe`'s distribution at every step, whatever the model's own
+    generation_config says; a caller adds max_new_tokens, output_scores and the like.
+
+    Fresh processors on every call: mirostat keeps its mu inside them, and starts
+    over when a new generate() call begins. To change a field anyway (say
+    min_new_tokens), update the dict rather than pass the keyword twice.
+    """
+    return {"do_sample": True, **GENERATE_NEUTRAL, "logits_processor": as_logits_processor(recipe)}
 
 
 # GenerationConfig applies these in this order (transformers 5.24.0,
@@ -162,6 +219,39 @@ _PENALTIES = (RepetitionPenalty, PresencePenalty, FrequencyPenalty, NoRepeatNGra
 _NEUTRAL = {"temperature": 1.0, "top_k": 0, "top_p": 1.0, "min_p": 0.0, "typical_p": 1.0,
             "epsilon_cutoff": 0.0, "eta_cutoff": 0.0}
 _NEUTRAL_PENALTIES = {"repetition_penalty": 1.0, "no_repeat_ngram_size": 0}
+# Pairs of stages whose order never changes the distribution, so transformers' fixed
+# order is harmless for them; every other pair of different kinds can come out
+# differently when swapped (tests/test_export_order.py holds a witness for each).
+# - temperature, top_k: dividing by T > 0 keeps the ranking, and top_k reads only ranks.
+# - temperature, repetition_penalty: x / T has x's sign, so the penalty scales it by the
+#   same factor before or after.
+# - no_repeat_ngram with temperature or repetition_penalty: the ban reads the history,
+#   not the logits, and neither of the other two moves a token in or out.
+# - top_k, min_p: min_p cuts at a ratio to the top token, which renormalising over the
+#   top k leaves alone, and both keep a most-likely prefix closed under ties.
+COMMUTING: frozenset[frozenset[type[Stage]]] = frozenset(
+    frozenset(pair) for pair in (
+        (Temperature, TopK), (Temperature, RepetitionPenalty), (Temperature, NoRepeatNGram),
+        (RepetitionPenalty, NoRepeatNGram), (TopK, MinP),
+    )
+)
+
+
+def changes_nothing(stage: Stage) -> bool:
+    """True for a stage at its neutral value (temperature=1, top_k=0, top_p=1, ...)."""
+    mapped = LIBRARY_ORDER.get(type(stage))
+    if mapped is None:
+        return False
+    field, attribute = mapped
+    neutral = {**_NEUTRAL, **_NEUTRAL_PENALTIES}[field]
+    return getattr(stage, attribute) == neutral
+
+
+def order_matters(first: Stage, second: Stage) -> bool:
+    """Whether running `second` before `first` can give another distribution than the recipe's."""
+    if changes_nothing(first) or changes_nothing(second):
+        return False
+    return frozenset({type(first), type(second)}) not in COMMUTING
 
 
 def to_generation_config(recipe: Recipe) -> GenerationConfig:
@@ -189,12 +279,10 @@ def to_generation_config(recipe: Recipe) -> GenerationConfig:
             fields[field] = getattr(stage, attribute)
             placed.append(stage)
     rank = list(LIBRARY_ORDER)
-    for earlier, later in zip(placed, placed[1:]):
-        if rank.index(type(earlier)) > rank.index(type(later)):
-            left_out.append(f"{later.text()} will run before {earlier.text()} (transformers' fixed order)")
-    for stage in placed:
-        if isinstance(stage, RepetitionPenalty) and stage.theta != 1.0:
-            left_out.append(f"{stage.text()} multiplies negative logits in transformers (Keskar et al. divide)")
+    for i, earlier in enumerate(placed):
+        for later in placed[i + 1:]:  # every pair, not just neighbours: the order is a permutation
+            if rank.index(type(earlier)) > rank.index(type(later)) and order_matters(earlier, later):
+                left_out.append(f"{later.text()} will run before {earlier.text()} (transformers' fixed order)")
     if left_out:
         warnings.warn("GenerationConfig differs from the recipe: " + "; ".join(left_out), RecipeWarning, stacklevel=3)
     return GenerationConfig(**fields)

@@ -3,7 +3,7 @@
 The history is every token id of the context so far, prompt and generated, as in
 transformers for decoder-only models. Penalties change the logits of tokens that
 occur in it; `no_repeat_ngram` removes tokens. Reference implementation compared
-against: transformers 5.24.0.
+against: transformers 5.24.0, whose rules these are (repetition_penalty included).
 """
 
 from __future__ import annotations
@@ -28,15 +28,19 @@ from tui.decoding.stage import (
 
 @dataclass(frozen=True, slots=True)
 class RepetitionPenalty(Stage):
-    """Penalized sampling (Keskar et al. 2019, CTRL): divide the logit of every
-    token that occurs in the history by theta, once however often it occurs.
+    """Penalise every token that occurs in the history, once however often it occurs:
+    a positive logit is divided by theta, a negative one multiplied by theta.
 
-    Difference from the library, followed here on purpose: the paper divides every
-    such logit by theta; transformers' RepetitionPenaltyLogitsProcessor divides only
-    positive logits and *multiplies* negative ones by theta, so that a negative logit
-    also falls. For a negative logit the paper's rule raises it (toward 0). The two
-    agree whenever the penalised logits are >= 0. theta = 1 changes nothing;
-    theta < 1 rewards repetition.
+    This is the rule of transformers' RepetitionPenaltyLogitsProcessor (5.24.0), so
+    a recipe exported to generate() does exactly what the pane showed. It comes from
+    penalized sampling in CTRL (Keskar et al. 2019), whose formula divides every
+    penalised logit by theta. That literal formula is not used: for a negative logit it
+    *raises* the token toward 0, so a larger penalty makes repetition more likely (on
+    a model whose logits are all negative, a repeated token can go from a few percent
+    to nearly certain). The two rules agree whenever the penalised logits are >= 0.
+    Neither is unchanged by adding a constant to every logit (the sign decides), but
+    under this one, for theta > 1, a repeated token never gains on an unrepeated one;
+    theta = 1 changes nothing; theta < 1 rewards repetition.
     """
 
     theta: float
@@ -50,7 +54,9 @@ class RepetitionPenalty(Stage):
             return cands
         seen, _ = history.counts()
         at, _ = cands.positions_of(seen)
-        cands.logits[at] /= self.theta  # in place: the chain owns the array
+        penalised = cands.logits[at]
+        # in place: the chain owns the array; 0 stays 0 under either branch
+        cands.logits[at] = np.where(penalised < 0, penalised * self.theta, penalised / self.theta)
         return cands
 
     def text(self) -> str:

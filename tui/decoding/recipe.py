@@ -9,7 +9,7 @@ mutable part (mirostat's mu) lives in a `Sampler`, one per pane.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Iterable, Sequence
+from typing import TYPE_CHECKING, Any, Iterable, Sequence
 
 import numpy as np
 
@@ -59,6 +59,19 @@ class Recipe:
         return len(self.stages)
 
     @property
+    def keeps_one_token(self) -> bool:
+        """True when the final distribution holds one token at every step, whatever the
+        logits (a `greedy` stage): every draw then gives the same text, so one sample
+        stands for any number of them. (top_k=1 keeps every token tied at the top.)"""
+        return any(isinstance(stage, Greedy) for stage in self.stages)
+
+    @property
+    def after_greedy(self) -> tuple[Stage, ...]:
+        """The stages after the first `greedy`: they receive one token and can change nothing."""
+        at = next((i for i, s in enumerate(self.stages) if isinstance(s, Greedy)), None)
+        return () if at is None else self.stages[at + 1:]
+
+    @property
     def is_stateful(self) -> bool:
         """True when a stage keeps state between steps (so panes need their own sampler)."""
         return any(stage.stateful for stage in self.stages)
@@ -79,8 +92,25 @@ class Recipe:
         """The input and the result after every stage, for the inspect view."""
         return Sampler(self.stages).trace(logits, history)
 
+    def generate_kwargs(self) -> dict[str, Any]:
+        """Keyword arguments that make ``model.generate(ids, **kwargs, max_new_tokens=...)``
+        sample from exactly this recipe's distribution at every step.
+
+        They hold the recipe's processors and switch off every stage generate() would
+        add from the model's generation_config.json or its own defaults. Call it anew
+        for each generate() call (mirostat keeps its state in the processors).
+        """
+        from tui.decoding.hf import generate_kwargs
+
+        return generate_kwargs(self)
+
     def as_logits_processor(self) -> LogitsProcessorList:
-        """A transformers LogitsProcessorList doing the same inside `model.generate()`."""
+        """The recipe's stages as a transformers LogitsProcessorList, in order.
+
+        Not enough on its own: generate() appends its own sampling stages after a
+        custom list (the global ``top_k=50`` and whatever the model's
+        generation_config.json sets). Use `generate_kwargs()`, which holds this list.
+        """
         from tui.decoding.hf import as_logits_processor
 
         return as_logits_processor(self)

@@ -13,6 +13,7 @@ import math
 from dataclasses import dataclass
 from pathlib import Path
 
+from tui.numbers import fixed
 from tui.session.record import mean_logprob, perplexity
 from tui.transcripts.headers import PaneHeader, TranscriptHeader
 from tui.transcripts.reader import StoredSession
@@ -150,9 +151,10 @@ def token_cell(text: str) -> str:
 
 
 def fmt(v: float, digits: int = 3) -> str:
+    """A number for a report: fixed digits, never ``-0.000``; ``n/a`` for NaN."""
     if isinstance(v, float) and not math.isfinite(v):
         return "n/a" if math.isnan(v) else ("inf" if v > 0 else "-inf")
-    return f"{v:.{digits}f}"
+    return fixed(v, digits)
 
 
 def origin_text(pane: PaneHeader, report: Report) -> str:

@@ -190,6 +190,6 @@ def _detail_table(pane, open_: bool) -> Iterator[str]:
         yield (f'<tr><td class="num">{r.step}</td><td class="mono">{escape(token_cell(r.text))}'
                f'</td><td class="num">{r.token_id}</td><td class="num">{r.rank}</td>'
                f'<td class="num">{r.raw_prob:.4f}</td><td class="num">{r.final_prob:.4f}</td>'
-               f'<td class="num">{r.kept}</td><td class="num">{r.raw_entropy:.3f}</td>'
-               f'<td class="num">{r.final_entropy:.3f}</td><td>{escape(note)}</td></tr>')
+               f'<td class="num">{r.kept}</td><td class="num">{fmt(r.raw_entropy)}</td>'
+               f'<td class="num">{fmt(r.final_entropy)}</td><td>{escape(note)}</td></tr>')
     yield "</tbody></table></details>"

@@ -121,5 +121,5 @@ def render_md(report: Report) -> Iterator[str]:
         for r in pane.rows:
             note = "; ".join(x for x in ("by hand" if r.forced else "", r.stop or "") if x)
             yield (f"| {r.step} | {_cell(_code(token_cell(r.text)))} | {r.token_id} | {r.rank} | "
-                   f"{r.raw_prob:.4f} | {r.final_prob:.4f} | {r.kept} | {r.raw_entropy:.3f} | "
-                   f"{r.final_entropy:.3f} | {note} |")
+                   f"{r.raw_prob:.4f} | {r.final_prob:.4f} | {r.kept} | {fmt(r.raw_entropy)} | "
+                   f"{fmt(r.final_entropy)} | {note} |")

@@ -28,6 +28,7 @@ from typing import Any, Iterable, Sequence
 
 from tui.errors import UserError
 from tui.files import write_atomic
+from tui.numbers import json_ready
 from tui.sweeps.metrics import SampleRecord
 
 FOLDER_FORMAT = "logitfork-sweep-folder/1"
@@ -115,7 +116,7 @@ def read_manifest(folder: Path) -> Manifest:
 
 
 def _chunk_lines(index: int, samples: Sequence[SampleRecord]) -> bytes:
-    lines = [json.dumps({"chunk": index, "sample": s.to_json()}, ensure_ascii=False)
+    lines = [json.dumps({"chunk": index, "sample": json_ready(s.to_json())}, ensure_ascii=False)
              for s in samples]
     lines.append(json.dumps({"chunk": index, "end": len(samples)}))
     return ("\n".join(lines) + "\n").encode("utf-8")

@@ -18,7 +18,7 @@ from typing import TYPE_CHECKING
 
 from tui.errors import UserError, located
 from tui.sweeps.folder import Manifest
-from tui.sweeps.spec import Prompt, SweepSpec
+from tui.sweeps.spec import Prompt, SweepSpec, samples_for
 
 if TYPE_CHECKING:
     from tui.model.catalogue import LoadedModel
@@ -68,7 +68,7 @@ def run_fingerprint(spec: SweepSpec, prompts: tuple[Prompt, ...]) -> str:
 
 
 def chunk_count(spec: SweepSpec, prompts: int) -> int:
-    rows = len(spec.recipes()) * spec.samples
+    rows = sum(samples_for(recipe, spec.samples) for recipe in spec.recipes())
     return prompts * -(-rows // spec.chunk_rows)
 
 

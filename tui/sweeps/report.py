@@ -26,8 +26,10 @@ from tui.sweeps.results import (
     ResultRow,
     SweepResults,
     compute_results,
+    count_text,
     csv_text,
     endings_text,
+    fixed_note,
     interval_text,
     label_of,
     markdown_text,
@@ -49,6 +51,8 @@ def _table(results: SweepResults, prompt: int | None, shown: tuple[str, ...]) ->
     columns = {name: (title, digits) for name, title, digits in TABLE_COLUMNS}
     left_out = len(COLUMN_PRIORITY) - len(shown)
     caption = "[95% bootstrap interval]; * on the front of distinct-2 against mean log-prob"
+    if fixed_note(results):
+        caption += f"; {fixed_note(results)}"
     if left_out:
         caption += f"; {left_out} more measure(s) in results.md"
     table = Table(title=scope_title(results, prompt), caption=caption, box=box.SIMPLE_HEAD)
@@ -69,7 +73,7 @@ def _table(results: SweepResults, prompt: int | None, shown: tuple[str, ...]) ->
             else:
                 iv = getattr(m, name)
                 cells.append(interval_text(iv.estimate, iv.low, iv.high, columns[name][1]))
-        table.add_row("*" if row.on_front else "", label_of(row.recipe), str(m.n_samples), *cells)
+        table.add_row("*" if row.on_front else "", label_of(row.recipe), count_text(row), *cells)
     return table
 
 
@@ -194,7 +198,7 @@ def report_folder(folder: SweepFolder, out: TextIO, *, n_resamples: int = 1000,
     """
     m = folder.manifest
     results = compute_results(m.title, m.recipes, m.prompts, folder.samples(),
-                              n_resamples=n_resamples, seed=m.seed)
+                              n_resamples=n_resamples, seed=m.seed, samples_per_prompt=m.samples)
     write_atomic(folder.path / "results.csv", csv_text(results))
     write_atomic(folder.path / "results.md", markdown_text(results))
     write_scatter_png(results, folder.path / "front.png")

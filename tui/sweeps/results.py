@@ -9,6 +9,11 @@ each scope on two axes, both larger-is-better:
   the samples of a prompt, averaged over prompts;
 - likelihood: the mean natural-log probability per token under the raw model.
 
+A recipe that keeps one token at every step (greedy) runs once per prompt
+(`tui.sweeps.spec.samples_for`); its one sample is counted as many times as the sweep
+asked for, so that its set measures mean what they mean for every other recipe, and
+its row says "fixed".
+
 CSV and Markdown writers live here too (plain text, no rich); the terminal table and
 the charts are in `tui.sweeps.report`.
 """
@@ -18,9 +23,11 @@ from __future__ import annotations
 import csv
 import io
 import math
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from typing import Sequence
 
+from tui.decoding import Recipe
+from tui.numbers import fixed, plain_zero
 from tui.session.record import STOP_REASONS
 from tui.sweeps.metrics import (
     MEASURE_NAMES,
@@ -48,6 +55,7 @@ class ResultRow:
     prompt: int | None  # prompt index from 0, or None for all prompts
     measures: RecipeMeasures
     on_front: bool
+    fixed: bool = False  # ran once per prompt: the recipe keeps one token at every step
 
     @property
     def point(self) -> tuple[float, float]:
@@ -65,6 +73,7 @@ class SweepResults:
     prompts: int
     rows: tuple[ResultRow, ...]
     n_resamples: int
+    samples: int = 0  # samples per prompt and recipe the sweep asked for (0: not known)
 
     def scope(self, prompt: int | None) -> list[ResultRow]:
         """The rows of one scope, in recipe order."""
@@ -79,10 +88,25 @@ class SweepResults:
         return sorted((r for r in self.scope(prompt) if r.on_front), key=lambda r: r.point)
 
 
+def _stand_in(group: list[SampleRecord], samples: int) -> list[SampleRecord]:
+    """A fixed recipe's one sample per prompt, counted `samples` times (as sample 0..n-1)."""
+    out: list[SampleRecord] = []
+    for prompt in dict.fromkeys(s.prompt_index for s in group):
+        mine = [s for s in group if s.prompt_index == prompt]
+        if len(mine) == 1:
+            mine = [replace(mine[0], sample_index=i) for i in range(samples)]
+        out += mine
+    return out
+
+
 def compute_results(title: str, recipes: Sequence[str], prompts: int,
                     samples: Sequence[SampleRecord], *, n_resamples: int = 1000,
-                    seed: int = 0) -> SweepResults:
-    """Measure every recipe (and every recipe and prompt) and mark the fronts."""
+                    seed: int = 0, samples_per_prompt: int = 0) -> SweepResults:
+    """Measure every recipe (and every recipe and prompt) and mark the fronts.
+
+    `samples_per_prompt` is the sweep's `samples`: a recipe that keeps one token has one
+    sample per prompt, measured as that many copies of it (0: measured as it is).
+    """
     ordered = sorted(samples, key=lambda s: (s.prompt_index, s.sample_index))
     by_recipe = {r: [s for s in ordered if s.recipe == r] for r in recipes}
     stray = sorted({s.recipe for s in ordered} - set(recipes))
@@ -90,6 +114,7 @@ def compute_results(title: str, recipes: Sequence[str], prompts: int,
         raise ValueError(f"samples of recipes the sweep does not list: {', '.join(stray)}")
     rows: list[ResultRow] = []
     scopes: list[int | None] = [None] + (list(range(prompts)) if prompts > 1 else [])
+    fixed_recipes = {r for r in recipes if samples_per_prompt > 1 and Recipe.parse(r).keeps_one_token}
     for scope in scopes:
         measured = []
         for recipe in recipes:
@@ -97,13 +122,31 @@ def compute_results(title: str, recipes: Sequence[str], prompts: int,
             if not group:
                 raise ValueError(f"no samples of recipe {recipe!r}"
                                  + ("" if scope is None else f" for prompt {scope + 1}"))
-            measured.append(measure_samples(group, n_resamples=n_resamples, seed=seed))
+            if recipe in fixed_recipes:
+                m = measure_samples(_stand_in(group, samples_per_prompt), n_resamples=n_resamples, seed=seed)
+                ran = {reason: sum(s.ending == reason for s in group) for reason in STOP_REASONS}
+                measured.append(replace(m, n_samples=len(group), endings=ran))  # n, endings: what ran
+            else:
+                measured.append(measure_samples(group, n_resamples=n_resamples, seed=seed))
         points = [(getattr(m, DIVERSITY).estimate, getattr(m, LIKELIHOOD).estimate)
                   for m in measured]
         front = set(pareto_front(points, maximize=(True, True)))
-        rows += [ResultRow(r, scope, m, i in front)
+        rows += [ResultRow(r, scope, m, i in front, r in fixed_recipes)
                  for i, (r, m) in enumerate(zip(recipes, measured))]
-    return SweepResults(title, tuple(recipes), prompts, tuple(rows), n_resamples)
+    return SweepResults(title, tuple(recipes), prompts, tuple(rows), n_resamples, samples_per_prompt)
+
+
+def count_text(row: ResultRow) -> str:
+    """The n column: how many samples ran, and "fixed" for a recipe that ran once per prompt."""
+    return f"{row.measures.n_samples} (fixed)" if row.fixed else str(row.measures.n_samples)
+
+
+def fixed_note(results: SweepResults) -> str:
+    """What "(fixed)" means, for a table's caption; empty when no row is fixed."""
+    if not any(r.fixed for r in results.rows):
+        return ""
+    return (f"(fixed): keeps one token at every step, so it ran once per prompt and that "
+            f"sample counts as all {results.samples}; its intervals are points")
 
 
 def scope_name(prompt: int | None) -> str:
@@ -117,7 +160,7 @@ def csv_text(results: SweepResults) -> str:
     header = ["recipe", "prompt", "n_samples"]
     for name in MEASURE_NAMES:
         header += [name, f"{name}_low", f"{name}_high"]
-    header += [f"ended_{reason.replace(' ', '_')}" for reason in STOP_REASONS] + ["on_front"]
+    header += [f"ended_{reason.replace(' ', '_')}" for reason in STOP_REASONS] + ["on_front", "fixed"]
     writer.writerow(header)
     for row in results.rows:
         m = row.measures
@@ -125,14 +168,14 @@ def csv_text(results: SweepResults) -> str:
         for name in MEASURE_NAMES:
             iv = getattr(m, name)
             line += [_number(iv.estimate), _number(iv.low), _number(iv.high)]
-        line += [m.endings[reason] for reason in STOP_REASONS] + [int(row.on_front)]
+        line += [m.endings[reason] for reason in STOP_REASONS] + [int(row.on_front), int(row.fixed)]
         writer.writerow(line)
     return out.getvalue()
 
 
 def _number(value: float) -> str:
-    """A float in CSV: repr precision, empty for NaN."""
-    return "" if math.isnan(value) else repr(float(value))
+    """A float in CSV: repr precision, empty for NaN, never -0.0."""
+    return "" if math.isnan(value) else repr(plain_zero(float(value)))
 
 
 def interval_text(estimate: float, low: float, high: float, digits: int = 3) -> str:
@@ -140,8 +183,8 @@ def interval_text(estimate: float, low: float, high: float, digits: int = 3) -> 
     if math.isnan(estimate):
         return "-"
     if math.isnan(low) or math.isnan(high):
-        return f"{estimate:.{digits}f}"
-    return f"{estimate:.{digits}f} [{low:.{digits}f}, {high:.{digits}f}]"
+        return fixed(estimate, digits)
+    return f"{fixed(estimate, digits)} [{fixed(low, digits)}, {fixed(high, digits)}]"
 
 
 # (measure, column title, digits) for the human-readable tables
@@ -169,10 +212,13 @@ def scope_title(results: SweepResults, prompt: int | None) -> str:
 
 def markdown_text(results: SweepResults) -> str:
     """Markdown tables, one per scope; a front recipe is marked with `*`."""
+    note = fixed_note(results)
     lines = [f"# {_md(results.title)}", "",
-             f"Estimates with 95% percentile-bootstrap intervals ({results.n_resamples} "
-             "resamples of samples within each prompt). `*`: on the trade-off front of "
-             f"{AXIS_LABELS[DIVERSITY]} against {AXIS_LABELS[LIKELIHOOD]}.", ""]
+             f"Estimates with 95% bootstrap intervals ({results.n_resamples} resamples of "
+             "samples within each prompt; percentile intervals, recentred on the estimate for "
+             "distinct-n and self-BLEU). `*`: on the trade-off front of "
+             f"{AXIS_LABELS[DIVERSITY]} against {AXIS_LABELS[LIKELIHOOD]}."
+             + (f" {_md(note)}." if note else ""), ""]
     for prompt in results.scopes():
         lines += [f"## {_md(scope_title(results, prompt))}", ""]
         header = ["front", "recipe", "n"] + [title for _, title, _ in TABLE_COLUMNS] + ["endings"]
@@ -181,7 +227,7 @@ def markdown_text(results: SweepResults) -> str:
         for row in results.scope(prompt):
             m = row.measures
             cells = ["*" if row.on_front else "", f"`{_md(label_of(row.recipe))}`",
-                     str(m.n_samples)]
+                     count_text(row)]
             for name, _, digits in TABLE_COLUMNS:
                 iv = getattr(m, name)
                 cells.append(interval_text(iv.estimate, iv.low, iv.high, digits))

@@ -30,7 +30,7 @@ from tui.model.kv import KV
 from tui.session.record import IncrementalDecoder
 from tui.session.row_step import RawStep, StopRules, emit
 from tui.sweeps.metrics import SampleRecord
-from tui.sweeps.spec import DEFAULT_CHUNK_ROWS
+from tui.sweeps.spec import DEFAULT_CHUNK_ROWS, samples_for
 
 DecodeFn = Callable[[Sequence[int]], str]
 StepHook = Callable[[int, int], None]  # (rows that emitted a token, rows that ended this step)
@@ -76,9 +76,12 @@ class SweepJob:
                 raise ValueError(f"sweep job: {name} must be an integer >= 1, got {value!r}")
 
     def chunks(self) -> list[Chunk]:
-        """Every chunk of the sweep, prompt by prompt; indices count from 0."""
+        """Every chunk of the sweep, prompt by prompt; indices count from 0.
+
+        A recipe that keeps one token (greedy) has one row per prompt (`samples_for`)."""
         out: list[Chunk] = []
-        pairs = [(r, s) for r in range(len(self.recipes)) for s in range(self.samples)]
+        pairs = [(r, s) for r, recipe in enumerate(self.recipes)
+                 for s in range(samples_for(recipe, self.samples))]
         for p in range(len(self.prompt_ids)):
             for start in range(0, len(pairs), self.chunk_rows):
                 out.append(Chunk(len(out), p, tuple(pairs[start:start + self.chunk_rows])))

@@ -7,7 +7,7 @@ A sweep is a TOML file of our own format (documented in the README):
     prompts = ["text", [{ role = "user", content = "..." }]]   # either prompts ...
     scenario = "harbour-town.toml"    # ... or a scenario file whose prompt is used
     recipes = ["greedy", "top_p=0.9"] # explicit recipe texts, and/or a [grid]
-    samples = 8                       # per prompt and recipe, >= 1
+    samples = 8                       # per prompt and recipe, >= 1 (greedy: 1, see samples_for)
     max_new_tokens = 60               # 1..4096
     seed = 11                         # optional, default 0
     chunk_rows = 32                   # optional, rows per forward pass, 1..256
@@ -50,7 +50,9 @@ MAX_NEW_TOKENS = 4096
 DEFAULT_CHUNK_ROWS = 32  # rows per forward pass unless the file says otherwise
 MAX_CHUNK_ROWS = 256
 MAX_RECIPES = 256
-FINGERPRINT_FORMAT = "logitfork-sweep/1"
+# 2: a recipe that keeps one token runs once (`samples_for`), and repetition_penalty
+# follows transformers' sign rule; a folder of format 1 is refused, not mixed in.
+FINGERPRINT_FORMAT = "logitfork-sweep/2"
 _KEYS = ("title", "model", "prompts", "scenario", "recipes", "grid", "samples",
          "max_new_tokens", "seed", "chunk_rows", "stop")
 
@@ -124,6 +126,15 @@ class SweepSpec:
             lines += [f"{stage} = [{', '.join(_toml_value(v) for v in values)}]"
                       for stage, values in self.grid]
         return "\n".join(lines) + "\n"
+
+
+def samples_for(recipe: str, samples: int) -> int:
+    """How many samples of `recipe` a sweep draws per prompt: `samples`, or 1 for a
+    recipe that keeps one token at every step (greedy), whose samples would all be
+    the same text; its one sample stands for all of them when measured."""
+    from tui.decoding import Recipe
+
+    return 1 if Recipe.parse(recipe).keeps_one_token else samples
 
 
 def _toml_str(text: str) -> str:

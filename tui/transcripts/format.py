@@ -18,6 +18,7 @@ import json
 from datetime import datetime, timezone
 from typing import IO, TYPE_CHECKING, Any, Iterable, Iterator
 
+from tui.numbers import json_ready
 from tui.session.record import StepRecord
 from tui.transcripts.headers import (
     FORMAT,
@@ -54,8 +55,8 @@ def header(view: "SessionView", info: "SessionInfo", prompt_ids: Iterable[int]) 
 
 
 def dumps(obj: dict[str, Any]) -> str:
-    """One JSON line: strict JSON (no NaN), UTF-8 text kept as is."""
-    return json.dumps(obj, ensure_ascii=False, allow_nan=False)
+    """One JSON line: strict JSON (no NaN, no -0.0), UTF-8 text kept as is."""
+    return json.dumps(json_ready(obj), ensure_ascii=False, allow_nan=False)
 
 
 def step_line(rec: StepRecord) -> str:
