@@ -26,6 +26,7 @@ import torch
 from tui.errors import UserError
 from tui.model import conversion_cache as model_cache
 from tui.model import sources as model_sources
+from tui.settings import settings
 from tui.model.catalogue import (
     DEFAULT_MODEL,
     CatalogueEntry,
@@ -340,6 +341,7 @@ def test_a_failed_conversion_leaves_no_cache_that_would_load(tiny_gguf: Path, mo
 
     monkeypatch.undo()
     monkeypatch.setenv(model_cache.CACHE_ENV, str(folder.parent.parent))
+    settings.cache_clear()
     old = time.time() - model_cache.STALE_TEMP_SECONDS - 60
     os.utime(folder.parent / leftovers[0], (old, old))
     lm = load_model(str(tiny_gguf))
@@ -423,9 +425,11 @@ def test_a_bad_loader_setting_is_one_clear_error(tiny_gguf, monkeypatch):
 
     load_model(str(tiny_gguf))
     monkeypatch.setenv(LOADER_ENV, "fast")
+    settings.cache_clear()
     with pytest.raises(UserError, match="LOGITFORK_LOADER: must be auto or transformers, got 'fast'"):
         load_model(str(tiny_gguf))
     monkeypatch.setenv(LOADER_ENV, "transformers")
+    settings.cache_clear()
     assert load_model(str(tiny_gguf)).checkpoint is None
 
 
@@ -435,9 +439,11 @@ def test_the_generic_path_and_bfloat16_are_honoured_on_warm_starts(tiny_gguf, mo
 
     load_model(str(tiny_gguf))
     monkeypatch.setenv(FORWARD_ENV, "generic")
+    settings.cache_clear()
     generic = load_model(str(tiny_gguf))
     assert generic.checkpoint is None and type(generic.runner()) is Runner
     monkeypatch.delenv(FORWARD_ENV)
+    settings.cache_clear()
     half = load_model(str(tiny_gguf), dtype="bfloat16")
     assert half.checkpoint is not None and half.checkpoint.dtype == torch.bfloat16
     ids = half.encode_prompt(TEXT, None)

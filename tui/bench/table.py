@@ -63,6 +63,9 @@ def sweep_rows(lm: object, quick: bool) -> list[Row]:
 
 def main(argv: Sequence[str] | None = None) -> int:
     args = parse_args(argv)
+    from tui.settings import prepare_process
+
+    prepare_process()
     import torch
 
     from tui.bench import precision, runs, step

@@ -42,20 +42,9 @@ def wants_mono(flag: bool, environ: dict[str, str] | os._Environ[str] = os.envir
     return flag or bool(environ.get("NO_COLOR"))
 
 
-def quiet_openmp(environ: dict[str, str] | os._Environ[str] = os.environ) -> None:
-    """Let torch's OpenMP threads sleep, not spin, while they wait (unless set already).
-
-    Spinning threads next to the app's own thread starve both on a 2-core machine:
-    measured here, 10 steps of the default scenario took 29 s in the app against 2.4 s
-    with passive waiting. OpenMP reads this once, so it must be set before torch loads.
-    """
-    environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
-
-
 def main(args: argparse.Namespace) -> int:
     import sys
 
-    quiet_openmp()
     from tui.app.app import make_app
     from tui.errors import UserError
 

@@ -16,7 +16,6 @@ torch and transformers are imported inside functions, so `import tui.model.catal
 
 from __future__ import annotations
 
-import os
 import sys
 import time
 
@@ -24,7 +23,8 @@ from tui.errors import UserError, first_line
 from tui.model import conversion_cache as model_cache
 from tui.model.conversion_cache import Progress
 from tui.model.loaded import LoadedModel
-from tui.model.loading import LOADER_ENV, load_direct, load_transformers, loader_choice
+from tui.model.loading import load_direct, load_transformers, loader_choice
+from tui.settings import LOADER_ENV
 from tui.model.sources import (
     CatalogueEntry,
     HubNotCached,
@@ -71,7 +71,6 @@ def load_model(
     if dtype not in DTYPES:
         raise UserError(f"dtype: must be one of {', '.join(DTYPES)}, got {dtype!r}")
     loader = loader_choice()
-    os.environ.setdefault("HF_HUB_OFFLINE", "1")  # never reach for the network
     timings: dict[str, float] = {}
     started = time.perf_counter()
     source = resolve(name_or_path)

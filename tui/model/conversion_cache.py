@@ -35,10 +35,10 @@ from typing import Any, Callable, Iterator, TextIO
 
 from tui.errors import UserError
 from tui.files import write_atomic
+from tui.settings import CACHE_ENV, settings
 
 Progress = Callable[[str, float], None]
 
-CACHE_ENV = "LOGITFORK_CACHE_DIR"
 CACHE_FORMAT = 1  # bump when the folder layout changes; older folders are rebuilt
 MARKER = "logitfork-cache.json"  # written last: a folder without it is not a cache
 WEIGHTS = "model.safetensors"
@@ -50,9 +50,9 @@ _IDENTIFIER = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
 
 def cache_root() -> Path:
     """Where logitfork keeps converted models: `LOGITFORK_CACHE_DIR` or the user cache dir."""
-    override = os.environ.get(CACHE_ENV)
-    if override:
-        return Path(override).expanduser()
+    override = settings().cache_dir
+    if override is not None:
+        return override
     import platformdirs
 
     return Path(platformdirs.user_cache_dir("logitfork"))

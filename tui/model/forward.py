@@ -11,17 +11,16 @@ No Textual, no numpy math: tensors in, tensors out.
 
 from __future__ import annotations
 
-import os
 from typing import TYPE_CHECKING, Any, Sequence
 
 import torch
 
 from tui.model.kv import KV
+from tui.settings import FORWARD_ENV, settings
 
 if TYPE_CHECKING:
     from tui.model.lean_llama import LeanRunner
 
-FORWARD_ENV = "LOGITFORK_FORWARD"  # auto (default), lean or generic
 
 
 class Runner:
@@ -70,13 +69,8 @@ class Runner:
 
 
 def forward_choice() -> str:
-    """`LOGITFORK_FORWARD`: auto (unset), lean or generic; UserError for anything else."""
-    from tui.errors import UserError
-
-    choice = os.environ.get(FORWARD_ENV, "auto").strip().lower() or "auto"
-    if choice not in ("auto", "lean", "generic"):
-        raise UserError(f"{FORWARD_ENV}: must be auto, lean or generic, got {choice!r}")
-    return choice
+    """`LOGITFORK_FORWARD` (`tui.settings`): auto, lean or generic."""
+    return settings().forward
 
 
 def make_runner(source: Any) -> "Runner | LeanRunner":

@@ -15,7 +15,6 @@ from __future__ import annotations
 
 import importlib
 import json
-import os
 import time
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Sequence
@@ -25,11 +24,11 @@ from tui.model import conversion_cache as model_cache
 from tui.model.conversion_cache import Progress
 from tui.model.loaded import LoadedModel
 from tui.model.sources import ResolvedSource
+from tui.settings import settings
 
 if TYPE_CHECKING:
     from transformers import PreTrainedModel
 
-LOADER_ENV = "LOGITFORK_LOADER"  # auto (default: direct where it can) or transformers
 CONTEXT_KEYS = ("max_position_embeddings", "n_positions", "n_ctx", "seq_length")  # config keys, in order
 
 
@@ -108,11 +107,8 @@ def load_direct(source: ResolvedSource, dtype: str, timings: dict[str, float],
 
 
 def loader_choice() -> str:
-    """`LOGITFORK_LOADER`: auto (unset) or transformers; UserError for anything else."""
-    loader = os.environ.get(LOADER_ENV, "auto").strip().lower() or "auto"
-    if loader not in ("auto", "transformers"):
-        raise UserError(f"{LOADER_ENV}: must be auto or transformers, got {loader!r}")
-    return loader
+    """`LOGITFORK_LOADER` (`tui.settings`): auto or transformers."""
+    return settings().loader
 
 
 def _load_model_only(source: ResolvedSource, dtype: str) -> "PreTrainedModel":
