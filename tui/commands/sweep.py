@@ -54,7 +54,11 @@ def main(args: argparse.Namespace) -> int:
     from tui.sweeps.progress import SweepProgress
     from tui.sweeps.runner import SweepRunner
 
-    lm = load_model(spec.model, allow_pickle=args.allow_pickle)
+    from tui.commands.model_progress import ModelProgress, model_line
+
+    with ModelProgress() as progress:
+        lm = load_model(spec.model, allow_pickle=args.allow_pickle, progress=progress)
+    print(model_line(lm), file=sys.stderr)
     job = build_job(spec, prompts, lm)
     runner = lm.runner()
     versions = {**package_versions(), "model": {"name": lm.name, "source": lm.source,

@@ -20,8 +20,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="the session's seed (overrides the scenario's)")
     parser.add_argument("--mono", action="store_true",
                         help="no colour: text styles carry the rank (also when NO_COLOR is set)")
-    parser.add_argument("--dtype", choices=("float32", "bfloat16"), default="float32",
-                        help="weights and activations (default float32)")
+    parser.add_argument("--dtype", choices=("auto", "float32", "bfloat16"), default="auto",
+                        help="weights and activations (default auto: float32 unless the model "
+                        "is too big or too slow in it, then bfloat16)")
     parser.add_argument("--allow-pickle", action="store_true",
                         help="allow a model with only pickled (.bin/.pt) weights; they can run "
                         "code when loaded")
