@@ -314,6 +314,9 @@ def read_checkpoint(folder: Path, dtype: torch.dtype = torch.float32) -> LlamaCh
 
     Tensors are read one at a time and cast as they come, so a bfloat16 read of a
     float32 file never holds the float32 copy; a sharded folder is read shard by shard.
+    In the file's own dtype the projection weights stay on safetensors' memory map until
+    the lean path packs them (and frees them); the rest is copied off it, so that once
+    packed nothing holds the mapping and its pages leave the process.
     """
     from safetensors import safe_open
 
@@ -339,13 +342,21 @@ def read_checkpoint(folder: Path, dtype: torch.dtype = torch.float32) -> LlamaCh
                     raise ValueError(f"{name} has shape {tuple(tensor.shape)}, expected {expected[name]}")
                 if not tensor.dtype.is_floating_point:
                     raise ValueError(f"{name} is {tensor.dtype}, not floating point")
-                tensors[name] = tensor.to(dtype)
-                del tensor
+                cast = tensor.to(dtype)
+                if cast is tensor and not _packed_later(name):  # kept as is: off the file's mapping
+                    cast = tensor.clone()
+                tensors[name] = cast
+                del tensor, cast
     tensors["lm_head.weight"] = tensors.get("lm_head.weight", tensors["model.embed_tokens.weight"])
     shape = shape_from_config(config)
     if dtype != torch.float32:  # as `model.to(dtype)` rounds the rotary buffer (see `cast`)
         shape = LlamaShape(**{**vars(shape), "inv_freq": shape.inv_freq.to(dtype).float()})
     return LlamaCheckpoint(shape, tensors, config)
+
+
+def _packed_later(name: str) -> bool:
+    """Is this a weight `LeanRunner` packs (and then frees)?"""
+    return name.endswith("_proj.weight") or name == "lm_head.weight"
 
 
 def _positive_int(value: object) -> bool:

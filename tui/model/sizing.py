@@ -34,7 +34,21 @@ if TYPE_CHECKING:
 
 
 def gb(size: float) -> str:
-    return f"{size / GB:.1f} GB"
+    """Bytes as the user reads them: "4.9 GB", or "370 KB" / "12 MB" for small ones."""
+    if size >= 0.1 * GB:
+        return f"{size / GB:.1f} GB"
+    if size >= 1e6:
+        return f"{size / 1e6:.0f} MB"
+    return f"{size / 1e3:.0f} KB"
+
+
+def count_text(parameters: int) -> str:
+    """"1.24B" or "135M" or "93K" parameters."""
+    if parameters >= 1e9:
+        return f"{parameters / 1e9:.2f}B"
+    if parameters >= 1e6:
+        return f"{parameters / 1e6:.0f}M"
+    return f"{parameters / 1e3:.0f}K"
 
 
 def parameter_count(source: "ResolvedSource") -> int | None:
@@ -110,7 +124,7 @@ def check_memory(name: str, parameters: int | None, dtype: str, available: int) 
     if weights * MEMORY_MARGIN > available:
         hint = "; try --dtype bfloat16" if dtype == "float32" else ""
         raise UserError(
-            f"model {name}: {parameters / 1e9:.2f}B parameters need {gb(weights)} in {dtype} "
+            f"model {name}: {count_text(parameters)} parameters need {gb(weights)} in {dtype} "
             f"({gb(weights * MEMORY_MARGIN)} with working room) but {gb(available)} of memory is "
             f"available{hint}; close other programs or pick a smaller model")
     return weights
@@ -130,12 +144,21 @@ def check_disk(folder: Path, parameters: int | None, what: str) -> None:
                         f"has {gb(free)} free; free some space or set LOGITFORK_CACHE_DIR elsewhere")
 
 
-def rows_per_batch(weights_bytes: int, row_bytes: int, available: int, wanted: int,
-                   share: float = 0.5) -> int:
+def rows_per_batch(row_bytes: int, available: int, wanted: int, share: float = 0.5) -> int:
     """How many sweep rows one forward batch may hold: at most `wanted`, at least 1.
 
-    Each row holds its KV cache and activations (`row_bytes`); the batch may use `share`
-    of the memory left after the weights, so the system keeps the rest.
+    Each row holds its KV cache and activations (`row_bytes`); with the weights already
+    loaded, the batch may use `share` of the memory still available, so the system
+    keeps the rest.
     """
-    room = max(0.0, (available - weights_bytes * (MEMORY_MARGIN - 1.0)) * share)
+    room = max(0.0, available * share)
     return max(1, min(wanted, int(room // max(row_bytes, 1))))
+
+
+def row_bytes(layers: int, kv_heads: int, head_dim: int, context: int, vocab: int,
+              bytes_per_number: int) -> int:
+    """Memory one batch row takes at `context` positions: its keys and values in every
+    layer, plus its float32 logits and the decoding's float64 copies of them (about 3
+    vectors of the vocabulary)."""
+    cache = 2 * layers * kv_heads * head_dim * context * bytes_per_number
+    return cache + 3 * vocab * 8
