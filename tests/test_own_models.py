@@ -246,3 +246,24 @@ def test_the_top_bar_shows_the_dtype_and_the_time_to_the_end():
     # worked by hand: 90 steps at 0.5 steps/s take 180 s, shown as 3 min
     assert "m bfloat16 (auto)" in text and "0.5 steps/s (3 min to the end)" in text
     assert (time_text(40), time_text(3725)) == ("40 s", "1 h 2 min")
+
+
+def test_a_sweep_batch_is_checked_against_free_memory(qwen_dir, tmp_path):
+    from tui.sweeps.plan import batch_rows, check_batch
+    from tui.sweeps.runner import SweepJob
+    from tui.sweeps.spec import SweepSpec
+
+    lm = load_model(str(qwen_dir))
+    job = SweepJob(((1, 2, 3, 4),), ("greedy",), samples=8, max_new_tokens=6, chunk_rows=8)
+    # worked by hand: 2 layers x 2 kv heads x 16 dims x 10 positions x (k, v) x 4 bytes
+    # = 5,120 bytes of cache, plus 3 float64 vectors of the 300-token vocabulary (7,200)
+    per_row = 5_120 + 7_200
+    fits, line = batch_rows(lm, job, available=100 * per_row)
+    assert fits == 50 and line.startswith("batch: 8 rows per forward pass (chunk_rows); memory allows 50")
+    spec = SweepSpec(title="t", model=str(qwen_dir), prompts=("x",), scenario=None,
+                     explicit_recipes=("greedy",), grid=(), recipe_texts=("greedy",), samples=8,
+                     max_new_tokens=6, chunk_rows=8, path=tmp_path / "s.toml")
+    assert check_batch(spec, lm, job, available=100 * per_row) == line
+    with pytest.raises(UserError, match=r"s.toml: chunk_rows: 8 rows per forward pass do not fit .* "
+                                        r"set chunk_rows = 5 or less"):
+        check_batch(spec, lm, job, available=10 * per_row)

@@ -62,6 +62,17 @@ class LoadedModel:
             self.loaded_model = self.load_transformers_model()
         return self.loaded_model
 
+    def cache_shape(self) -> tuple[int, int, int, int]:
+        """(layers, kv heads, head dim, vocabulary): what one KV-cache row costs per position."""
+        if self.checkpoint is not None:
+            shape = self.checkpoint.shape
+            return shape.layers, shape.kv_heads, shape.head_dim, int(self.checkpoint.config["vocab_size"])
+        cfg = self.model.config
+        heads = int(getattr(cfg, "num_attention_heads", 1) or 1)
+        kv = int(getattr(cfg, "num_key_value_heads", None) or heads)
+        head_dim = int(getattr(cfg, "head_dim", None) or int(getattr(cfg, "hidden_size", 64)) // heads)
+        return int(getattr(cfg, "num_hidden_layers", 1)), kv, head_dim, int(getattr(cfg, "vocab_size", 0) or 0)
+
     def runner(self) -> "Runner | LeanRunner":
         """A fresh runner on the fastest path (`tui.model.forward.make_runner`).
 
