@@ -267,3 +267,23 @@ def test_a_sweep_batch_is_checked_against_free_memory(qwen_dir, tmp_path):
     with pytest.raises(UserError, match=r"s.toml: chunk_rows: 8 rows per forward pass do not fit .* "
                                         r"set chunk_rows = 5 or less"):
         check_batch(spec, lm, job, available=10 * per_row)
+
+
+def test_auto_keeps_float32_for_speed_without_native_bfloat16():
+    # the same 1.5B model as above: too slow in float32, but an emulated bfloat16 is no
+    # faster, so only memory would make auto leave float32
+    assert sizing.choose_dtype("auto", 1_500_000_000, 64 * 10**9, 8.0, native_bf16=False).dtype == "float32"
+    assert sizing.choose_dtype("auto", 1_500_000_000, 6 * 10**9, 8.0, native_bf16=False).dtype == "bfloat16"
+
+
+def test_a_tied_embedding_is_held_once(tiny_model_dir):
+    from tui.model.lean_llama import LeanRunner
+
+    lm = load_model(str(tiny_model_dir))  # a tied llama
+    runner = lm.runner()
+    if runner.packed:  # the packed head holds the matrix; lookups read the file's mapping
+        assert runner.embed is lm.checkpoint.embedding_rows
+        assert "model.embed_tokens.weight" not in lm.checkpoint.tensors
+    ids = lm.encode_prompt(TEXT, None)
+    # the same logits as a runner on transformers' model (its own embedding in memory)
+    assert torch.equal(runner.prefill([ids])[1], LeanRunner(lm.model).prefill([ids])[1])

@@ -8,7 +8,9 @@ runs the same computation with everything prepared once:
 - every weight packed once for oneDNN (`torch.ops.mkldnn`), whose fp32 kernels run several
   times faster than torch's default (MKL) at 2-8 rows on this CPU; in float32 each sum runs
   over chunks of input columns (see `PackedLinear`) to stay within 1e-4 of transformers;
-  plain `F.linear` where oneDNN is missing;
+  prefill and decode both run on the packed copy, so a checkpoint's own tensors are
+  freed once packed (a transformers model keeps its own); plain `F.linear` where oneDNN
+  is missing;
 - rotary cos/sin tables precomputed per position;
 - a preallocated KV cache written in place (ownership rule: `tui.model.forward.KV`);
 - SDPA attention over the cache; at decode the query heads of a group share one kv head
@@ -226,6 +228,12 @@ class LeanRunner:
         self.vocab_size = int(head.shape[0])
         if self.packed and head is not self.embed:
             rebind("lm_head.weight", None)
+        elif self.packed and isinstance(source, LlamaCheckpoint) and source.embedding_rows is not None:
+            # tied: the packed head holds the matrix; lookups read rows off the file mapping,
+            # so the embedding is not held a second time
+            self.embed = source.embedding_rows
+            rebind("model.embed_tokens.weight", None)
+            rebind("lm_head.weight", None)
         del head
         self.inv_freq = shape.inv_freq  # (D/2,) float32, transformers' own values
         self.rope_scale = shape.rope_scale
@@ -306,7 +314,7 @@ class LeanRunner:
             self._rope_tables(max(end, 2 * self.cos.shape[0]))
         cos, sin = self.cos[start:end], self.sin[start:end]  # (T, D)
         Hq, Hkv, D = self.n_heads, self.n_kv, self.head_dim
-        x = F.embedding(ids, self.embed).view(B * T, self.hidden)  # (BT, E)
+        x = F.embedding(ids, self.embed).to(self.dtype).view(B * T, self.hidden)  # (BT, E)
         for w, (keys, values) in zip(self.layers, kv.layers):
             # attention: fused q/k/v, rotary on q and k together, cache written in place
             h = F.rms_norm(x, (self.hidden,), w.attn_norm, self.eps)  # (BT, E)

@@ -59,10 +59,11 @@ class LlamaCheckpoint:
     shape: LlamaShape
     tensors: dict[str, torch.Tensor]
     config: dict[str, Any]
+    embedding_rows: torch.Tensor | None = None  # the file's embedding, mapped, not read (see read_checkpoint)
 
     @property
     def dtype(self) -> torch.dtype:
-        return self.tensors["model.embed_tokens.weight"].dtype
+        return self.tensors["model.norm.weight"].dtype
 
     def cast(self, dtype: torch.dtype) -> None:
         """Cast every tensor, and round the rotary frequencies to `dtype` and back.
@@ -314,9 +315,10 @@ def read_checkpoint(folder: Path, dtype: torch.dtype = torch.float32) -> LlamaCh
 
     Tensors are read one at a time and cast as they come, so a bfloat16 read of a
     float32 file never holds the float32 copy; a sharded folder is read shard by shard.
-    In the file's own dtype the projection weights stay on safetensors' memory map until
-    the lean path packs them (and frees them); the rest is copied off it, so that once
-    packed nothing holds the mapping and its pages leave the process.
+    Every tensor is copied off safetensors' memory map, so each shard's mapping leaves
+    the process once read. `embedding_rows` maps the embedding matrix from its file
+    without reading it: with tied embeddings the lean path packs the matrix for the
+    output projection and looks token rows up there, touching only the rows it reads.
     """
     from safetensors import safe_open
 
@@ -343,7 +345,7 @@ def read_checkpoint(folder: Path, dtype: torch.dtype = torch.float32) -> LlamaCh
                 if not tensor.dtype.is_floating_point:
                     raise ValueError(f"{name} is {tensor.dtype}, not floating point")
                 cast = tensor.to(dtype)
-                if cast is tensor and not _packed_later(name):  # kept as is: off the file's mapping
+                if cast is tensor:  # the same dtype: a copy, off the file's mapping
                     cast = tensor.clone()
                 tensors[name] = cast
                 del tensor, cast
@@ -351,12 +353,25 @@ def read_checkpoint(folder: Path, dtype: torch.dtype = torch.float32) -> LlamaCh
     shape = shape_from_config(config)
     if dtype != torch.float32:  # as `model.to(dtype)` rounds the rotary buffer (see `cast`)
         shape = LlamaShape(**{**vars(shape), "inv_freq": shape.inv_freq.to(dtype).float()})
-    return LlamaCheckpoint(shape, tensors, config)
+    rows = mapped_tensor(files["model.embed_tokens.weight"], "model.embed_tokens.weight")
+    return LlamaCheckpoint(shape, tensors, config, rows)
 
 
-def _packed_later(name: str) -> bool:
-    """Is this a weight `LeanRunner` packs (and then frees)?"""
-    return name.endswith("_proj.weight") or name == "lm_head.weight"
+_SAFETENSORS_DTYPES = {"F32": torch.float32, "BF16": torch.bfloat16, "F16": torch.float16}
+
+
+def mapped_tensor(path: Path, name: str) -> torch.Tensor | None:
+    """Tensor `name` of a safetensors file as a read-only private mapping of the file
+    (`torch.from_file`: pages are read when touched), or None for a dtype not mapped here."""
+    with open(path, "rb") as handle:
+        size = int.from_bytes(handle.read(8), "little")
+    entry = safetensors_header(path)[name]
+    dtype = _SAFETENSORS_DTYPES.get(entry.get("dtype"))
+    start, end = entry["data_offsets"]
+    if dtype is None or (8 + size + start) % dtype.itemsize:
+        return None
+    raw = torch.from_file(str(path), shared=False, size=path.stat().st_size, dtype=torch.uint8)
+    return raw[8 + size + start:8 + size + end].view(dtype).view(*entry["shape"])
 
 
 def _positive_int(value: object) -> bool:

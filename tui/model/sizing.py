@@ -8,8 +8,8 @@ from loading. The rules:
   activations and the KV cache), fit in the memory the system reports available;
 - `--dtype auto`: float32 unless it would not fit, or would run under `MIN_STEPS_PER_S`
   by the bandwidth floor (a decode step reads every weight once: seconds per step >=
-  weight bytes / memory bandwidth, with the bandwidth assumed or set in `tui.settings`);
-  then bfloat16 (half the bytes);
+  weight bytes / memory bandwidth, with the bandwidth assumed or set in `tui.settings`)
+  on a CPU with native bfloat16 matmuls; then bfloat16 (half the bytes);
 - disk: a GGUF conversion writes float32 weights, so it needs 4 bytes per parameter free;
 - sweeps: rows per forward batch from the memory left once the weights are in.
 """
@@ -88,9 +88,25 @@ class DtypeChoice:
     note: str = ""
 
 
+def native_bfloat16() -> bool:
+    """Does this CPU multiply bfloat16 natively (oneDNN's check: AVX-512 BF16 or AMX)?
+
+    Without it, torch emulates bfloat16 matmuls: measured by `make bench` on an AVX2
+    machine, a 4-row step in bfloat16 took 5x a 1-row one (1.7x in float32), so half the
+    bytes no longer make a faster step.
+    """
+    import torch
+
+    try:
+        return bool(torch.ops.mkldnn._is_mkldnn_bf16_supported())
+    except (AttributeError, RuntimeError):
+        return True  # cannot tell: the bandwidth rule alone decides
+
+
 def choose_dtype(requested: str, parameters: int | None, available: int,
-                 bandwidth_gbs: float, measured: bool = False) -> DtypeChoice:
-    """`requested` as is, or for "auto" float32 unless it would not fit or be too slow."""
+                 bandwidth_gbs: float, measured: bool = False, native_bf16: bool = True) -> DtypeChoice:
+    """`requested` as is, or for "auto" float32 unless it would not fit, or would be too
+    slow while the CPU has native bfloat16 (`native_bf16`) to make bfloat16 faster."""
     if requested != "auto":
         return DtypeChoice(requested)
     if not parameters:
@@ -100,7 +116,7 @@ def choose_dtype(requested: str, parameters: int | None, available: int,
     where = "set in " + BANDWIDTH_ENV if measured else "assumed; set " + BANDWIDTH_ENV
     if fp32 * MEMORY_MARGIN > available:
         why = f"float32 needs {gb(fp32 * MEMORY_MARGIN)} and {gb(available)} is available"
-    elif rate < MIN_STEPS_PER_S:
+    elif rate < MIN_STEPS_PER_S and native_bf16:
         why = (f"float32 would run at about {rate:.1f} steps/s ({gb(fp32)} of weights read per step "
                f"at {bandwidth_gbs:g} GB/s, {where})")
     else:
@@ -112,8 +128,9 @@ def resolve_dtype(requested: str, source: "ResolvedSource") -> tuple[DtypeChoice
     """`choose_dtype` for this source on this machine, and its parameter count."""
     parameters = parameter_count(source)
     knobs = settings()
+    native = native_bfloat16() if requested == "auto" else True
     return choose_dtype(requested, parameters, available_memory(), knobs.bandwidth_gbs,
-                        knobs.bandwidth_measured), parameters
+                        knobs.bandwidth_measured, native), parameters
 
 
 def check_memory(name: str, parameters: int | None, dtype: str, available: int) -> int:
