@@ -11,7 +11,7 @@ from __future__ import annotations
 import torch
 
 from tui.bench import step as bench_step
-from tui.bench.table import render
+from tui.bench.step import render
 from tui.model.forward import Runner
 from tui.model.lean_llama import LeanRunner, onednn_works
 

@@ -27,7 +27,7 @@ import time
 from pathlib import Path
 from typing import Any, Sequence
 
-from tui.bench.step import Row, ms, verdict
+from tui.bench.step import Row, ms, render, verdict
 
 SHAPES: dict[str, dict[str, Any]] = {
     "llama-1b": {"model_type": "llama", "architectures": ["LlamaForCausalLM"], "hidden_size": 2048,
@@ -219,8 +219,6 @@ def main(argv: Sequence[str] | None = None) -> int:
         folder, dtype, steps = args.one
         print(json.dumps(measure_one(Path(folder), dtype, int(steps))))
         return 0
-    from tui.bench.table import render
-
     rows = own_model_rows(args.quick, keep=not args.drop)
     print(render(rows))
     return 0

@@ -20,7 +20,7 @@ import sys
 import time
 from typing import Sequence
 
-from tui.bench.step import Row
+from tui.bench.step import Row, render
 
 PANES = (1, 2, 4, 8)
 CONTEXTS = (50, 400)  # context lengths for the step times
@@ -38,19 +38,6 @@ def parse_args(argv: Sequence[str] | None) -> argparse.Namespace:
     if args.threads is not None and args.threads < 1:
         p.error(f"--threads: must be at least 1, got {args.threads}")
     return args
-
-
-def render(rows: Sequence[Row]) -> str:
-    """A plain-text table with aligned columns."""
-    head = Row("section", "measurement", "value", "note", "target", "")
-    cells = [(r.section, r.name, r.value, r.target, r.status, r.note) for r in (head, *rows)]
-    widths = [max(len(c[i]) for c in cells) for i in range(5)]
-    lines = []
-    for i, c in enumerate(cells):
-        lines.append("  ".join(c[j].ljust(widths[j]) for j in range(5)) + "  " + c[5])
-        if i == 0:
-            lines.append("-" * (sum(widths) + 2 * 5 + 20))
-    return "\n".join(line.rstrip() for line in lines)
 
 
 def sweep_rows(lm: object, quick: bool) -> list[Row]:
