@@ -10,10 +10,23 @@ from pathlib import Path
 
 import pytest
 
+from tui.settings import prepare_process, settings
+
+prepare_process()  # the test run is an entry point: offline hub, passive OpenMP waits
+
 try:  # tests/ on sys.path (pytest's default rootdir-relative import)
     from tiny_model import build_tiny_model
 except ImportError:  # the project root on sys.path
     from tests.tiny_model import build_tiny_model
+
+
+@pytest.fixture(autouse=True)
+def fresh_settings():
+    """Settings are read once per process (`tui.settings`): each test reads its own
+    environment; a test that changes a variable midway calls `settings.cache_clear()`."""
+    settings.cache_clear()
+    yield
+    settings.cache_clear()
 
 
 @pytest.fixture(scope="session")

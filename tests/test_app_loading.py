@@ -25,7 +25,7 @@ async def test_the_model_loads_behind_a_progress_panel(tiny_model_dir):
 
     def hook(message) -> None:
         if isinstance(message, LogitforkApp.LoadProgress):
-            seen.append(message.stage)
+            seen.append(message.event.task)
 
     app = make_app(None, model=str(tiny_model_dir), seed=4)
     async with app.run_test(size=(80, 24), message_hook=hook) as pilot:

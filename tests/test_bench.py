@@ -11,7 +11,7 @@ from __future__ import annotations
 import torch
 
 from tui.bench import step as bench_step
-from tui.bench.table import render
+from tui.bench.step import render
 from tui.model.forward import Runner
 from tui.model.lean_llama import LeanRunner, onednn_works
 
@@ -44,3 +44,20 @@ def test_the_step_sections_cover_both_paths_and_every_pane_count():
     rows += bench_step.thread_rows(runners["lean"], contexts[10], 2)
     assert {r.section for r in rows} >= {"prefill", "threads"}
     assert any(r.status in ("PASS", "MISS") for r in rows)  # the 4-pane/1-pane target row
+
+
+def test_the_own_models_section_builds_a_sharded_folder_that_loads_directly(tmp_path, tiny_model_dir,
+                                                                           monkeypatch):
+    from tui.bench import own_models
+    from tui.model.llama_checkpoint import parameter_count, weight_files
+
+    monkeypatch.setattr(own_models, "SHARD_BYTES", 20_000)
+    shape = {**own_models.SHAPES["qwen2-0.5b"], "hidden_size": 32, "num_hidden_layers": 2,
+             "num_attention_heads": 4, "num_key_value_heads": 2, "intermediate_size": 48,
+             "vocab_size": 300}
+    folder = tmp_path / "qwen"
+    parameters = own_models.build_folder(folder, shape, tiny_model_dir)
+    assert parameters == parameter_count(folder) and len(set(weight_files(folder).values())) > 1
+    got = own_models.measure_one(folder, "float32", steps=1)
+    assert got["path"].startswith("fast path: qwen2") and got["weights"] == 4 * parameters
+    assert set(got["step_s"]) == {"1", "4", "8"} and got["rss"] > 0

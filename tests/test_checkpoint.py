@@ -143,6 +143,14 @@ def _edited(folder: Path, tmp_path: Path, **changes) -> Path:
     ({"rope_parameters": {"rope_type": "default", "rope_theta": 1e4, "partial_rotary_factor": 0.5}},
      "partial rotary"),
     ({"layer_types": ["sliding_attention", "full_attention"]}, "sliding"),
+    # the allow-list: keys it does not know name themselves (these exist in other
+    # transformers families: gemma2's soft-capping, q/k norms, quantised weights)
+    ({"final_logit_softcapping": 30.0}, "'final_logit_softcapping' is not on the lean path's allow-list"),
+    ({"attn_logit_softcapping": 50.0}, "'attn_logit_softcapping'"),
+    ({"use_qk_norm": True}, "'use_qk_norm'"),
+    ({"quantization_config": {"quant_method": "bitsandbytes"}}, "'quantization_config'"),
+    ({"pretraining_tp": 2}, "pretraining_tp 2 is not 1"),
+    ({"rope_parameters": {"rope_type": "default", "rope_theta": 1e4, "factor": 2.0}}, "'factor'"),
 ])
 def test_configs_it_does_not_reproduce_are_refused(changes, reason, tmp_path):
     folder = tmp_path / "model"
@@ -162,7 +170,7 @@ def test_a_qwen2_with_a_sliding_window_is_refused(tmp_path):
 
 @pytest.mark.parametrize("edit, reason", [
     ("extra", "differ"), ("missing", "differ"), ("shape", "shape"), ("integer", "floating"),
-    ("no-file", "model.safetensors"),
+    ("no-file", "model.safetensors.index.json"),
 ])
 def test_tensor_sets_it_does_not_reproduce_are_refused(edit, reason, tmp_path):
     folder = tmp_path / "model"

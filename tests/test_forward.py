@@ -15,6 +15,7 @@ from tui.errors import UserError
 from tui.model import lean_llama
 from tui.model.forward import FORWARD_ENV, Runner, make_runner
 from tui.model.kv import KV
+from tui.settings import settings
 from tui.model.lean_llama import LeanRunner, lean_refusal
 
 try:
@@ -192,11 +193,14 @@ def test_make_runner_picks_lean_and_falls_back(monkeypatch: pytest.MonkeyPatch):
     assert "dynamic" in (lean_refusal(dynamic) or "")
     assert type(make_runner(dynamic)) is Runner
     monkeypatch.setenv(FORWARD_ENV, "generic")
+    settings.cache_clear()
     assert type(make_runner(tiny_llama())) is Runner
     monkeypatch.setenv(FORWARD_ENV, "lean")
+    settings.cache_clear()
     with pytest.raises(UserError, match="dynamic"):
         make_runner(dynamic)
     monkeypatch.setenv(FORWARD_ENV, "fastest")
+    settings.cache_clear()
     with pytest.raises(UserError, match="LOGITFORK_FORWARD"):
         make_runner(tiny_llama())
 

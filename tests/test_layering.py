@@ -20,7 +20,8 @@ from pathlib import Path
 
 PACKAGE = Path(__file__).resolve().parents[1] / "tui"
 
-FLOOR = {"tui", "tui.errors", "tui.files", "tui.numbers", "tui.progress", "tui.token_style"}
+FLOOR = {"tui", "tui.errors", "tui.files", "tui.numbers", "tui.progress", "tui.settings",
+         "tui.token_style"}
 MAY_IMPORT: dict[str, set[str]] = {
     "decoding": set(),
     "model": set(),

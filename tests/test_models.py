@@ -26,6 +26,8 @@ import torch
 from tui.errors import UserError
 from tui.model import conversion_cache as model_cache
 from tui.model import sources as model_sources
+from tui.progress import ProgressEvent
+from tui.settings import LOADER_ENV, settings
 from tui.model.catalogue import (
     DEFAULT_MODEL,
     CatalogueEntry,
@@ -144,7 +146,7 @@ def test_bfloat16_casts_every_parameter(tiny_model_dir: Path):
 
 
 def test_an_unknown_dtype_is_refused_by_name(tiny_model_dir: Path):
-    with pytest.raises(UserError, match=r"dtype: must be one of float32, bfloat16, got 'float16'"):
+    with pytest.raises(UserError, match=r"dtype: must be one of auto, float32, bfloat16, got 'float16'"):
         load_model(str(tiny_model_dir), dtype="float16")
 
 
@@ -273,8 +275,8 @@ def test_a_gguf_converts_once_and_matches_transformers_gguf_loader(tiny_gguf, ti
     from safetensors import safe_open
     from transformers import AutoModelForCausalLM, AutoTokenizer
 
-    stages: list[tuple[str, float]] = []
-    lm = load_model(str(tiny_gguf), progress=lambda stage, fraction: stages.append((stage, fraction)))
+    events: list[ProgressEvent] = []
+    lm = load_model(str(tiny_gguf), progress=events.append)
     digest = hashlib.sha256(tiny_gguf.read_bytes()).hexdigest()[:16]  # reference: hashlib sha256
     folder = model_cache.models_dir() / digest
     assert model_cache.is_ready(folder)
@@ -294,9 +296,18 @@ def test_a_gguf_converts_once_and_matches_transformers_gguf_loader(tiny_gguf, ti
     assert "quantization_config" not in json.loads((folder / "config.json").read_text())
     assert lm.model.lm_head.weight.data_ptr() == lm.model.model.embed_tokens.weight.data_ptr()
 
-    fractions = [f for _, f in stages]
-    assert fractions == sorted(fractions) and fractions[-1] == 1.0
-    assert len({f for s, f in stages if s == "de-quantising weights"}) > 3  # per-tensor steps
+    converting = [e for e in events if e.task == "converting tiny.gguf (once)" and e.total]
+    done = [e.done for e in converting]
+    assert done == sorted(done) and len(set(done)) > 3  # per-tensor steps, in bytes
+    # reference: gguf's own reader, the bytes of every tensor's data in the file
+    from gguf import GGUFReader
+
+    assert converting[-1].done == converting[-1].total == sum(
+        int(t.n_bytes) for t in GGUFReader(str(tiny_gguf)).tensors)
+    written = [e for e in events if e.task == "writing the converted model"]
+    assert written[-1].done == written[-1].total == (folder / "model.safetensors").stat().st_size - \
+        8 - int.from_bytes((folder / "model.safetensors").read_bytes()[:8], "little")  # data bytes
+    assert events[-1] == ProgressEvent("ready", 1, 1)
 
     def no_conversion(*args, **kwargs):
         raise AssertionError("the warm path converted again")
@@ -340,6 +351,7 @@ def test_a_failed_conversion_leaves_no_cache_that_would_load(tiny_gguf: Path, mo
 
     monkeypatch.undo()
     monkeypatch.setenv(model_cache.CACHE_ENV, str(folder.parent.parent))
+    settings.cache_clear()
     old = time.time() - model_cache.STALE_TEMP_SECONDS - 60
     os.utime(folder.parent / leftovers[0], (old, old))
     lm = load_model(str(tiny_gguf))
@@ -353,7 +365,13 @@ def test_a_failed_conversion_leaves_no_cache_that_would_load(tiny_gguf: Path, mo
 def test_a_warm_start_reads_the_cache_directly_and_matches_transformers(tiny_gguf):
     from tui.model.lean_llama import LeanRunner
 
-    cold = load_model(str(tiny_gguf))  # converts, then loads through transformers' Auto classes
+    os.environ[LOADER_ENV] = "transformers"  # the reference: transformers' Auto classes
+    settings.cache_clear()
+    try:
+        cold = load_model(str(tiny_gguf))  # converts (and records), then loads through transformers
+    finally:
+        del os.environ[LOADER_ENV]
+        settings.cache_clear()
     folder = resolve(str(tiny_gguf)).folder
     assert cold.checkpoint is None and model_cache.read_direct_record(folder) is not None
     warm = load_model(str(tiny_gguf))
@@ -423,9 +441,11 @@ def test_a_bad_loader_setting_is_one_clear_error(tiny_gguf, monkeypatch):
 
     load_model(str(tiny_gguf))
     monkeypatch.setenv(LOADER_ENV, "fast")
+    settings.cache_clear()
     with pytest.raises(UserError, match="LOGITFORK_LOADER: must be auto or transformers, got 'fast'"):
         load_model(str(tiny_gguf))
     monkeypatch.setenv(LOADER_ENV, "transformers")
+    settings.cache_clear()
     assert load_model(str(tiny_gguf)).checkpoint is None
 
 
@@ -435,9 +455,11 @@ def test_the_generic_path_and_bfloat16_are_honoured_on_warm_starts(tiny_gguf, mo
 
     load_model(str(tiny_gguf))
     monkeypatch.setenv(FORWARD_ENV, "generic")
+    settings.cache_clear()
     generic = load_model(str(tiny_gguf))
     assert generic.checkpoint is None and type(generic.runner()) is Runner
     monkeypatch.delenv(FORWARD_ENV)
+    settings.cache_clear()
     half = load_model(str(tiny_gguf), dtype="bfloat16")
     assert half.checkpoint is not None and half.checkpoint.dtype == torch.bfloat16
     ids = half.encode_prompt(TEXT, None)
@@ -446,29 +468,41 @@ def test_the_generic_path_and_bfloat16_are_honoured_on_warm_starts(tiny_gguf, mo
     assert {p.dtype for p in half.model.parameters()} == {torch.bfloat16}
 
 
-def test_a_first_conversion_on_a_terminal_draws_its_bar_to_the_end(tiny_gguf, monkeypatch):
+def test_a_first_conversion_on_a_terminal_draws_its_bar_to_the_end(tiny_gguf):
+    from tui.commands.model_progress import ModelProgress
+
     class Terminal(io.StringIO):
         def isatty(self) -> bool:
             return True
 
     stream = Terminal()
-    monkeypatch.setattr(sys, "stderr", stream)
-    load_model(str(tiny_gguf))
-    last = stream.getvalue().split("\r")[-1]
-    assert "100%" in last and last.endswith("\n")  # the bar closes its line
-
-
-def test_the_text_progress_bar_draws_in_place():
-    stream = io.StringIO()
-    bar = model_cache.TextProgressBar("converting x", stream=stream, width=10)
-    bar("de-quantising weights", 0.5)
-    bar("de-quantising weights", 0.5)  # unchanged: not redrawn
-    bar("cache written", 1.0)
+    with ModelProgress(stream) as progress:
+        load_model(str(tiny_gguf), progress=progress)
     text = stream.getvalue()
-    # worked by hand: half of 10 cells filled, then all 10 and a closing newline
-    assert text.count("\r") == 2
-    assert "converting x [#####.....]  50%  de-quantising weights" in text
-    assert "[##########] 100%  cache written" in text and text.endswith("\n")
+    assert "converting tiny.gguf (once)" in text and "100%" in text  # rich.progress's own percent
+    assert "GB" in text  # the bytes shown
+    assert text.replace("\x1b[?25h", "").endswith("\n")  # the bar closes its line (and shows the cursor)
+
+
+def test_a_warm_start_draws_nothing_and_a_pipe_never_gets_a_bar(tiny_gguf):
+    from tui.commands.model_progress import ModelProgress
+
+    pipe = io.StringIO()  # not a terminal
+    with ModelProgress(pipe) as progress:
+        load_model(str(tiny_gguf), progress=progress)  # converts: a bytes task
+    assert pipe.getvalue() == ""
+
+
+def test_progress_events_read_as_one_line():
+    from tui.progress import time_left
+
+    event = ProgressEvent("converting x.gguf", 1.2e9, 4.8e9, "bytes", "about 30 s left")
+    assert event.text() == "converting x.gguf  1.20/4.80 GB  about 30 s left"
+    assert event.fraction == 0.25
+    # worked by hand: a quarter done in 10 s leaves three quarters, 30 s at the same rate
+    assert time_left(1, 4, started=100.0, now=110.0) == "about 30 s left"
+    assert time_left(1, 100, started=0.0, now=10.0) == "about 16 min left"
+    assert time_left(0, 4, started=0.0, now=10.0) == ""  # no rate yet
 
 
 # ---------------------------------------------------------------- prompts

@@ -55,3 +55,29 @@ def test_two_panes_with_one_recipe_and_shared_draws_write_the_same_text(lm):
     a, b, c = engine.view().panes
     assert a.text == b.text and len(a.records) == len(b.records)
     assert all(r.rank == 1 for r in c.records)  # greedy takes the argmax (definition)
+
+
+def test_the_lean_path_matches_transformers_on_the_embedded_model(lm):
+    # Reference: transformers 5.24.0 LlamaForCausalLM's own forward pass over the whole
+    # sequence (no cache), on the same weights; the project's parity tolerance is 1e-4.
+    import torch
+
+    from tui.model import lean_llama
+    from tui.model.lean_llama import LeanRunner
+
+    runner = lm.runner()
+    assert isinstance(runner, LeanRunner) and len(runner.layers) == 30  # every layer, no test sizes
+    if runner.packed and runner.dtype == torch.float32:  # production chunk sizes, not test ones
+        assert runner.k_chunk == lean_llama.K_CHUNK == 288
+    ids = lm.encode_prompt("The ferry to the lighthouse leaves at", None)
+    kv, logits = runner.prefill([ids])
+    worst = 0.0
+    for _ in range(4):
+        with torch.inference_mode():
+            reference = lm.model(input_ids=torch.tensor([ids])).logits[0, -1].float()
+        assert float(reference.std()) > 1.0  # guard: logits far from flat
+        worst = max(worst, float((logits[0] - reference).abs().max()))
+        token = int(reference.argmax())
+        ids.append(token)
+        kv, logits = runner.step(kv, [token])
+    assert worst < 1e-4, worst

@@ -109,6 +109,32 @@ def build_tiny_model(path: str | Path) -> Path:
     return path
 
 
+def build_tiny_qwen2_model(path: str | Path, max_shard_size: str | None = None) -> Path:
+    """A tiny random-weight `Qwen2ForCausalLM` (q/k/v biases, untied head) with the same
+    tokenizer, saved with `save_pretrained`; `max_shard_size` (e.g. "60KB") splits the
+    weights into shards with a `model.safetensors.index.json`, as big models ship."""
+    import torch
+    from transformers import GenerationConfig, Qwen2Config, Qwen2ForCausalLM
+
+    path = Path(path)
+    path.mkdir(parents=True, exist_ok=True)
+    tokenizer = _train_tokenizer()
+    eos_id = tokenizer.convert_tokens_to_ids(EOS_TOKEN)
+    config = Qwen2Config(
+        vocab_size=len(tokenizer), hidden_size=64, intermediate_size=128, num_hidden_layers=2,
+        num_attention_heads=4, num_key_value_heads=2, max_position_embeddings=256,
+        rms_norm_eps=1e-6, rope_theta=1000000.0, initializer_range=0.25, tie_word_embeddings=False,
+        bos_token_id=None, eos_token_id=eos_id, pad_token_id=eos_id,
+    )
+    with torch.random.fork_rng(devices=[]):
+        torch.manual_seed(SEED)
+        model = _random_biases(Qwen2ForCausalLM(config).eval())
+    model.generation_config = GenerationConfig(eos_token_id=eos_id, pad_token_id=eos_id)
+    model.save_pretrained(path, **({"max_shard_size": max_shard_size} if max_shard_size else {}))
+    tokenizer.save_pretrained(path)
+    return path
+
+
 def _llama_cpp_permute(weight, n_head: int):
     """Reorder q/k rows the way llama.cpp's converter does (rotary halves interleaved).
 

@@ -15,6 +15,7 @@ from typing import Sequence
 
 from tui import __version__
 from tui.errors import UserError
+from tui.settings import prepare_process
 
 # command name -> (module under tui.commands, one-line help)
 COMMANDS: dict[str, tuple[str, str]] = {
@@ -57,6 +58,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     try:
+        prepare_process()  # offline hub, passive OpenMP waits: before torch loads (tui.settings)
         return int(args._module.main(args) or 0)
     except UserError as exc:
         print(f"error: {exc}", file=sys.stderr)

@@ -8,6 +8,7 @@ bytes, chunks, tokens or steps; `total` is None while it is not yet known.
 
 from __future__ import annotations
 
+import time
 from dataclasses import dataclass
 from typing import Callable
 
@@ -22,6 +23,16 @@ class ProgressEvent:
     unit: str = ""  # "bytes", "chunks", "tokens", "steps", or "" for a plain fraction
     note: str = ""  # a short extra, such as a token rate
 
+    def text(self) -> str:
+        """One line for a status display: "converting x.gguf  1.20/4.50 GB  about 40 s left"."""
+        parts = [self.task]
+        if self.unit == "bytes":
+            parts.append(f"{self.done / 1e9:.2f}/{self.total / 1e9:.2f} GB" if self.total
+                         else f"{self.done / 1e9:.2f} GB")
+        if self.note:
+            parts.append(self.note)
+        return "  ".join(parts)
+
     @property
     def fraction(self) -> float | None:
         if not self.total:
@@ -34,3 +45,15 @@ ProgressCallback = Callable[[ProgressEvent], None]
 
 def no_progress(event: ProgressEvent) -> None:
     """A callback that shows nothing."""
+
+
+def time_left(done: float, total: float | None, started: float, now: float | None = None) -> str:
+    """"about 40 s left" from the rate so far (`started`: a `time.monotonic()` reading);
+    "" until there is a rate to go by."""
+    now = time.monotonic() if now is None else now
+    if not total or done <= 0 or done >= total or now <= started:
+        return ""
+    seconds = (total - done) * (now - started) / done
+    if seconds >= 90:
+        return f"about {seconds / 60:.0f} min left"
+    return f"about {max(1, round(seconds))} s left"

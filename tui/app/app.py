@@ -31,6 +31,7 @@ from tui.app.pane_grid import PaneGrid
 from tui.app.recovery_offer import RecoveryActions
 from tui.app.token_pane import TokenPane
 from tui.app.top_bar import BarState, TopBar
+from tui.progress import ProgressEvent
 from tui.session.views import SessionView
 from tui.workbench.source import SessionLoader, SessionSource
 from tui.workbench.stepper import (
@@ -98,10 +99,11 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
             self.event = event
 
     class LoadProgress(Message):
-        def __init__(self, stage: str, fraction: float | None) -> None:
+        """A `ProgressEvent` from the model's loading worker."""
+
+        def __init__(self, event: ProgressEvent) -> None:
             super().__init__()
-            self.stage = stage
-            self.fraction = fraction
+            self.event = event
 
     class LoadDone(Message):
         def __init__(self, source: SessionSource | None, error: str = "") -> None:
@@ -180,8 +182,8 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
 
     @work(thread=True, exclusive=True, exit_on_error=False, group="load")
     def _load_model(self, loader: SessionLoader) -> None:
-        def progress(stage: str, fraction: float | None = None) -> None:
-            self.post_message(self.LoadProgress(stage, fraction))
+        def progress(event: ProgressEvent) -> None:
+            self.post_message(self.LoadProgress(event))
 
         try:
             source = loader.load(progress)
@@ -205,7 +207,7 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
     @on(LoadProgress)
     def _load_progress(self, message: LoadProgress) -> None:
         for panel in self.grid.screen.query(LoadingPanel):
-            panel.set_progress(message.stage, message.fraction)
+            panel.set_progress(message.event.text(), message.event.fraction)
 
     @on(LoadDone)
     def _load_done(self, message: LoadDone) -> None:
@@ -282,7 +284,8 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
             steps_per_second=rate, running=running, busy=", ".join(self.busy),
             step=view.step if view else 0, cursor=self.cursor,
             read_only=self.source is not None and self.source.engine is None,
-            loading=self.source is None, mode=getattr(self.source, "label", "read-only"))
+            loading=self.source is None, mode=getattr(self.source, "label", "read-only"),
+            dtype=_dtype_shown(self.source), steps_left=_steps_left(self.source, view))
         self.grid.screen.query_one(TopBar).set_state(state)
         if view is not None:
             self.grid.sync(view, self.cursor)
@@ -331,8 +334,23 @@ MODEL_KEYS: dict[str, str] = {  # key -> action, for the controls a read-only se
     if isinstance(b, Binding) and b.action.split("(")[0] in CHANGES for key in b.key.split(",")}
 
 
+def _dtype_shown(source: SessionSource | None) -> str:
+    """The dtype for the top bar: nothing for float32, "(auto)" when auto chose it."""
+    info = getattr(source, "info", None)
+    if info is None or info.dtype == "float32":
+        return ""
+    return f"{info.dtype} (auto)" if info.dtype_note else info.dtype
+
+
+def _steps_left(source: SessionSource | None, view: SessionView | None) -> int | None:
+    engine = source.engine if source is not None else None
+    if engine is None or view is None:
+        return None
+    return max(0, engine.max_new_tokens - view.step)
+
+
 def make_app(scenario: str | None = None, *, model: str | None = None, seed: int | None = None,
-             mono: bool = False, dtype: str = "float32", allow_pickle: bool = False,
+             mono: bool = False, dtype: str = "auto", allow_pickle: bool = False,
              max_new_tokens: int | None = None, source: SessionSource | None = None,
              save_folder: Path | None = None, recovery: bool = False) -> LogitforkApp:
     """The app on a scenario (by name or path; the default one when None), or on `source`.

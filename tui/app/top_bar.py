@@ -1,4 +1,4 @@
-"""The top bar: model, seed, shared draws, steps per second, running or paused, cursor."""
+"""The top bar: model (and dtype), seed, shared draws, step rate and time to the end, state, cursor."""
 
 from __future__ import annotations
 
@@ -25,6 +25,8 @@ class BarState:
     read_only: bool = False
     loading: bool = False
     mode: str = "read-only"  # the word shown for a read-only session (replay, recovered)
+    dtype: str = ""  # shown when not float32, e.g. "bfloat16 (auto)"
+    steps_left: int | None = None  # steps until every pane reaches max_new_tokens
 
 
 def bar_text(state: BarState) -> Text:
@@ -43,6 +45,8 @@ def bar_text(state: BarState) -> Text:
         text.append(f"{state.busy}\u2026 ", style="italic")
     if state.model:
         text.append(shown_line(state.model), style="bold")
+    if state.dtype:
+        text.append(f" {state.dtype}")
     if state.seed is not None:
         text.append(f"  seed {state.seed}")
     if state.shared_draws is not None:
@@ -52,11 +56,22 @@ def bar_text(state: BarState) -> Text:
     rate = state.steps_per_second
     if not state.read_only:  # a stored session is not stepped
         text.append(f"  {rate:.1f} steps/s" if rate else "  - steps/s")
+        if rate and state.steps_left:
+            text.append(f" ({time_text(state.steps_left / rate)} to the end)")
     where = f"step {state.step}"
     if state.cursor != state.step:
         where = f"cursor {state.cursor}/{state.step}"
     text.append(f"  {where}", style="bold")
     return text
+
+
+def time_text(seconds: float) -> str:
+    """A short duration: "40 s", "3 min", "1 h 5 min"."""
+    if seconds < 90:
+        return f"{max(1, round(seconds))} s"
+    if seconds < 3600:
+        return f"{round(seconds / 60)} min"
+    return f"{int(seconds // 3600)} h {round(seconds % 3600 / 60)} min"
 
 
 class TopBar(Static):

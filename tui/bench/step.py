@@ -27,6 +27,19 @@ class Row:
     status: str = ""  # PASS, MISS or empty when there is no target
 
 
+def render(rows: Sequence[Row]) -> str:
+    """A plain-text table with aligned columns."""
+    head = Row("section", "measurement", "value", "note", "target", "")
+    cells = [(r.section, r.name, r.value, r.target, r.status, r.note) for r in (head, *rows)]
+    widths = [max(len(c[i]) for c in cells) for i in range(5)]
+    lines = []
+    for i, c in enumerate(cells):
+        lines.append("  ".join(c[j].ljust(widths[j]) for j in range(5)) + "  " + c[5])
+        if i == 0:
+            lines.append("-" * (sum(widths) + 2 * 5 + 20))
+    return "\n".join(line.rstrip() for line in lines)
+
+
 def verdict(ok: bool) -> str:
     return "PASS" if ok else "MISS"
 

@@ -1,6 +1,6 @@
 """`make bench`: how fast a step is, on the generic and the lean forward path, and why.
 
-    python -m tui.bench [--quick] [--cold] [--model NAME] [--threads N]
+    python -m tui.bench [--quick] [--cold] [--model NAME] [--threads N] [--no-own-models]
 
 Prints one plain-text table, one row per measurement. Every ratio is computed from
 numbers measured in the same run with the variants interleaved (timings on this shared
@@ -8,8 +8,9 @@ numbers measured in the same run with the variants interleaved (timings on this 
 MISS beside it. Sections: parity of the lean path on the real model, decode step time
 (1/2/4/8 panes, context ~50 and ~400), prefill, matmul layouts tried, threads, the
 4-recipe run against transformers' generate(), the recipe math's share of a step,
-bfloat16's deviation and speed, the sweep's batching gain, and start-up time (cold
-only with --cold: ~40 s).
+bfloat16's deviation and speed, the sweep's batching gain, start-up time (cold
+only with --cold: ~40 s), and models of 1B llama and 0.5B qwen2 shape against the
+bandwidth floor (`tui.bench.own_models`; --no-own-models leaves them out).
 """
 
 from __future__ import annotations
@@ -19,7 +20,7 @@ import sys
 import time
 from typing import Sequence
 
-from tui.bench.step import Row
+from tui.bench.step import Row, render
 
 PANES = (1, 2, 4, 8)
 CONTEXTS = (50, 400)  # context lengths for the step times
@@ -31,23 +32,12 @@ def parse_args(argv: Sequence[str] | None) -> argparse.Namespace:
     p.add_argument("--cold", action="store_true", help="also time a first GGUF conversion (~40 s)")
     p.add_argument("--model", default=None, help="a catalogue name or local folder (default: the embedded model)")
     p.add_argument("--threads", type=int, default=None, help="torch threads (default: torch's choice)")
+    p.add_argument("--no-own-models", action="store_true",
+                   help="leave out the 1B llama / 0.5B qwen2 shapes (tui.bench.own_models: minutes)")
     args = p.parse_args(argv)
     if args.threads is not None and args.threads < 1:
         p.error(f"--threads: must be at least 1, got {args.threads}")
     return args
-
-
-def render(rows: Sequence[Row]) -> str:
-    """A plain-text table with aligned columns."""
-    head = Row("section", "measurement", "value", "note", "target", "")
-    cells = [(r.section, r.name, r.value, r.target, r.status, r.note) for r in (head, *rows)]
-    widths = [max(len(c[i]) for c in cells) for i in range(5)]
-    lines = []
-    for i, c in enumerate(cells):
-        lines.append("  ".join(c[j].ljust(widths[j]) for j in range(5)) + "  " + c[5])
-        if i == 0:
-            lines.append("-" * (sum(widths) + 2 * 5 + 20))
-    return "\n".join(line.rstrip() for line in lines)
 
 
 def sweep_rows(lm: object, quick: bool) -> list[Row]:
@@ -63,6 +53,9 @@ def sweep_rows(lm: object, quick: bool) -> list[Row]:
 
 def main(argv: Sequence[str] | None = None) -> int:
     args = parse_args(argv)
+    from tui.settings import prepare_process
+
+    prepare_process()
     import torch
 
     from tui.bench import precision, runs, step
@@ -117,6 +110,11 @@ def main(argv: Sequence[str] | None = None) -> int:
     rows += sweep_rows(lm, quick)
     section("start")
     rows += runs.start_rows(args.cold, args.model)
+    if not args.no_own_models:
+        from tui.bench.own_models import own_model_rows
+
+        section("own models")
+        rows += own_model_rows(quick)
     print(render(rows))
     met = sum(r.status == "PASS" for r in rows)
     missed = sum(r.status == "MISS" for r in rows)

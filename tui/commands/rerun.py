@@ -7,6 +7,7 @@ tokens, both top-5 lists, and the package versions then and now).
 from __future__ import annotations
 
 import argparse
+import sys
 
 EXIT_DIFFERENT = 3
 
@@ -30,7 +31,11 @@ def main(args: argparse.Namespace) -> int:
 
     name = args.model or head.model_name
     dtype = head.dtype if head.dtype in DTYPES else "float32"
-    lm = load_model(name, dtype=dtype, allow_pickle=args.allow_pickle)
+    from tui.commands.model_progress import ModelProgress, model_line
+
+    with ModelProgress() as progress:
+        lm = load_model(name, dtype=dtype, allow_pickle=args.allow_pickle, progress=progress)
+    print(model_line(lm), file=sys.stderr)
     result = rerun(session, lm)
     for line in describe(result, args.transcript, name):
         print(line)

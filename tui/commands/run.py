@@ -17,7 +17,9 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                    help="write the transcript here ('-' for standard output)")
     p.add_argument("--model", default=None, help="a catalogue name, a local folder or a .gguf")
     p.add_argument("--seed", type=int, default=None, help="override the scenario's seed")
-    p.add_argument("--dtype", choices=("float32", "bfloat16"), default="float32")
+    p.add_argument("--dtype", choices=("auto", "float32", "bfloat16"), default="auto",
+                   help="weights and activations (default auto: float32 unless the model is too "
+                   "big or too slow in it, then bfloat16)")
     p.add_argument("--allow-pickle", action="store_true",
                    help="allow pickled (.bin/.pt) weights; only for files you trust")
 
@@ -39,7 +41,11 @@ def main(args: argparse.Namespace) -> int:
     from tui.files import write_atomic
     from tui.transcripts import format as transcript
     model_name = args.model or scenario.model or DEFAULT_MODEL
-    lm = load_model(model_name, dtype=args.dtype, allow_pickle=args.allow_pickle)
+    from tui.commands.model_progress import ModelProgress, model_line
+
+    with ModelProgress() as progress:
+        lm = load_model(model_name, dtype=args.dtype, allow_pickle=args.allow_pickle, progress=progress)
+    print(model_line(lm), file=sys.stderr)
     engine, info = open_session(lm, scenario, seed=args.seed)
     steps = min(args.steps or scenario.max_new_tokens, scenario.max_new_tokens)
     times: list[float] = []

@@ -34,6 +34,7 @@ def main(args: argparse.Namespace) -> int:
     from tui.sweeps.folder import SweepFolder, package_versions, shard_text
     from tui.sweeps.plan import (
         build_job,
+        check_batch,
         default_folder,
         make_manifest,
         parse_shard,
@@ -54,8 +55,13 @@ def main(args: argparse.Namespace) -> int:
     from tui.sweeps.progress import SweepProgress
     from tui.sweeps.runner import SweepRunner
 
-    lm = load_model(spec.model, allow_pickle=args.allow_pickle)
+    from tui.commands.model_progress import ModelProgress, model_line
+
+    with ModelProgress() as progress:
+        lm = load_model(spec.model, allow_pickle=args.allow_pickle, progress=progress)
+    print(model_line(lm), file=sys.stderr)
     job = build_job(spec, prompts, lm)
+    print(check_batch(spec, lm, job), file=sys.stderr)  # rows per forward pass against free memory
     runner = lm.runner()
     versions = {**package_versions(), "model": {"name": lm.name, "source": lm.source,
                                                 "dtype": lm.dtype},

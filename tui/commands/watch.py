@@ -20,8 +20,9 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
                         help="the session's seed (overrides the scenario's)")
     parser.add_argument("--mono", action="store_true",
                         help="no colour: text styles carry the rank (also when NO_COLOR is set)")
-    parser.add_argument("--dtype", choices=("float32", "bfloat16"), default="float32",
-                        help="weights and activations (default float32)")
+    parser.add_argument("--dtype", choices=("auto", "float32", "bfloat16"), default="auto",
+                        help="weights and activations (default auto: float32 unless the model "
+                        "is too big or too slow in it, then bfloat16)")
     parser.add_argument("--allow-pickle", action="store_true",
                         help="allow a model with only pickled (.bin/.pt) weights; they can run "
                         "code when loaded")
@@ -42,20 +43,9 @@ def wants_mono(flag: bool, environ: dict[str, str] | os._Environ[str] = os.envir
     return flag or bool(environ.get("NO_COLOR"))
 
 
-def quiet_openmp(environ: dict[str, str] | os._Environ[str] = os.environ) -> None:
-    """Let torch's OpenMP threads sleep, not spin, while they wait (unless set already).
-
-    Spinning threads next to the app's own thread starve both on a 2-core machine:
-    measured here, 10 steps of the default scenario took 29 s in the app against 2.4 s
-    with passive waiting. OpenMP reads this once, so it must be set before torch loads.
-    """
-    environ.setdefault("OMP_WAIT_POLICY", "PASSIVE")
-
-
 def main(args: argparse.Namespace) -> int:
     import sys
 
-    quiet_openmp()
     from tui.app.app import make_app
     from tui.errors import UserError
 

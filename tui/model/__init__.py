@@ -6,7 +6,10 @@
 - `loading`: loading through transformers, or straight from a checkpoint;
 - `loaded`: `LoadedModel` (prompt encoding, decoding, runners);
 - `kv`: the cache rows every forward path shares; `forward`: the generic runner and `make_runner`;
-- `llama_checkpoint`, `lean_llama`: the fast llama-family path and what it accepts.
+- `llama_checkpoint`, `lean_llama`: the fast llama-family path and what it accepts (an
+  allow-list of config keys); `transformers_internals`: what those paths read of
+  transformers beyond its public API;
+- `sizing`: sizes from file headers, the memory and disk checks, `--dtype auto`.
 
 Everything that imports torch or transformers does it inside functions or in the
 forward modules only, so `tui.model.catalogue` is cheap to import.

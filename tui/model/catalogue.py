@@ -16,15 +16,12 @@ torch and transformers are imported inside functions, so `import tui.model.catal
 
 from __future__ import annotations
 
-import os
-import sys
 import time
 
 from tui.errors import UserError, first_line
 from tui.model import conversion_cache as model_cache
-from tui.model.conversion_cache import Progress
 from tui.model.loaded import LoadedModel
-from tui.model.loading import LOADER_ENV, load_direct, load_transformers, loader_choice
+from tui.model.loading import load_direct, load_transformers
 from tui.model.sources import (
     CatalogueEntry,
     HubNotCached,
@@ -36,6 +33,8 @@ from tui.model.sources import (
     resolve,
     resolve_source,
 )
+from tui.progress import ProgressCallback, ProgressEvent, no_progress
+from tui.settings import FORWARD_ENV, LOADER_ENV, settings
 
 __all__ = [
     "CatalogueEntry",
@@ -52,26 +51,29 @@ __all__ = [
 ]
 
 DEFAULT_MODEL = "smollm2-135m-instruct"
-DTYPES = ("float32", "bfloat16")
+DTYPES = ("auto", "float32", "bfloat16")
 
 
 def load_model(
     name_or_path: str,
     *,
-    dtype: str = "float32",
+    dtype: str = "auto",
     allow_pickle: bool = False,
-    progress: Progress | None = None,
+    progress: ProgressCallback | None = None,
 ) -> LoadedModel:
     """Resolve and load a model; convert a GGUF into the cache first if needed.
 
-    `progress(stage, fraction)` hears the stages (fraction rising to 1.0). With no
-    callback and stderr a terminal, a first GGUF conversion draws a text bar there.
+    `dtype` "auto" picks float32 or bfloat16 from the model's size (`tui.model.sizing`);
+    a model whose weights will not fit in memory is refused before anything loads.
+    `progress` hears the conversion (bytes and time left) and the loading stages.
+    `LoadedModel.path_note` says which forward path runs the model and why.
     Raises `UserError` (exit 2) for anything that cannot load.
     """
+    from tui.model import sizing
+
     if dtype not in DTYPES:
         raise UserError(f"dtype: must be one of {', '.join(DTYPES)}, got {dtype!r}")
-    loader = loader_choice()
-    os.environ.setdefault("HF_HUB_OFFLINE", "1")  # never reach for the network
+    knobs = settings()
     timings: dict[str, float] = {}
     started = time.perf_counter()
     source = resolve(name_or_path)
@@ -81,14 +83,17 @@ def load_model(
             f"model {source.name}: {source.location} has only pickled weights (.bin/.pt), which can run code "
             "when loaded; convert them to safetensors, or pass --allow-pickle if you trust their origin"
         )
-    report = progress or (lambda stage, fraction: None)
+    report = progress or no_progress
+    choice, parameters = sizing.resolve_dtype(dtype, source)
+    weights = sizing.check_memory(source.name, parameters, choice.dtype, sizing.available_memory())
     if source.kind == "gguf" and not model_cache.is_ready(source.folder):
-        bar = progress
-        if bar is None and sys.stderr.isatty():
-            bar = model_cache.TextProgressBar(f"converting {source.name} (once)")
+        sizing.check_disk(source.folder.parent, parameters, f"model cache {source.folder.parent}")
+        if choice.dtype != "float32":  # transformers de-quantises into float32 first
+            sizing.check_memory(f"{source.name} (its conversion, in float32)", parameters, "float32",
+                                sizing.available_memory())
         t = time.perf_counter()
         try:
-            model_cache.convert_gguf(source.gguf_file, source.folder, _scaled(bar, 0.0, 0.9))
+            model_cache.convert_gguf(source.gguf_file, source.folder, report)
         except UserError:
             raise
         except Exception as exc:
@@ -97,14 +102,36 @@ def load_model(
                 f"nothing was cached; check the file and the free space in {source.folder.parent}"
             ) from None
         timings["convert"] = time.perf_counter() - t
-        report = _scaled(bar, 0.9, 1.0)  # the bar also draws the load's last tenth
-    direct = loader == "auto" and source.kind == "gguf"
-    loaded = load_direct(source, dtype, timings, report) if direct else None
-    if loaded is None:
-        loaded = load_transformers(source, dtype, timings, report)
+    if knobs.loader == "transformers":
+        why: str | None = f"{LOADER_ENV}=transformers"
+    elif knobs.forward == "generic":
+        why = f"{FORWARD_ENV}=generic"
+    else:
+        why = None
+    loaded = load_direct(source, choice.dtype, timings, report) if why is None else why
+    if isinstance(loaded, str):
+        why, loaded = loaded, load_transformers(source, choice.dtype, timings, report)
+        loaded.path_note = _transformers_path_note(loaded, why, knobs.forward)
+    else:
+        family = loaded.checkpoint.config["model_type"] if loaded.checkpoint else "?"
+        loaded.path_note = (f"fast path: {family} weights read directly and run by the lean forward "
+                            "(every config key on its allow-list)")
+    loaded.dtype_note, loaded.weights_bytes = choice.note, weights
     timings["total"] = time.perf_counter() - started
-    report("ready", 1.0)
+    report(ProgressEvent("ready", 1, 1))
     return loaded
+
+
+def _transformers_path_note(lm: LoadedModel, direct_refusal: str, forward: str) -> str:
+    """The one line for a model loaded through transformers: which forward path, and why."""
+    from tui.model.lean_llama import lean_refusal
+
+    if forward == "generic":
+        return f"generic path: transformers' forward ({FORWARD_ENV}=generic)"
+    lean = lean_refusal(lm.model)
+    if lean is None:
+        return f"fast path: the lean forward on weights loaded by transformers (not read directly: {direct_refusal})"
+    return f"generic path: transformers' forward, as the lean path cannot run it: {lean}"
 
 
 def offline_status(entry: CatalogueEntry) -> tuple[bool, str]:
@@ -125,10 +152,3 @@ def offline_status(entry: CatalogueEntry) -> tuple[bool, str]:
     if source.kind == "hub":
         return True, f"in the local Hugging Face cache ({hf_cache_dir()}){pickle_note}"
     return True, f"local folder {source.folder}{pickle_note}"
-
-
-def _scaled(progress: Progress | None, low: float, high: float) -> Progress:
-    """`progress` with fractions mapped from [0, 1] into [low, high]; a no-op for None."""
-    if progress is None:
-        return lambda stage, fraction: None
-    return lambda stage, fraction: progress(stage, low + (high - low) * fraction)

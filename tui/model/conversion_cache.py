@@ -25,20 +25,18 @@ import json
 import os
 import re
 import shutil
-import sys
 import tempfile
 import time
 from contextlib import contextmanager, suppress
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Callable, Iterator, TextIO
+from typing import Any, Callable, Iterator
 
 from tui.errors import UserError
 from tui.files import write_atomic
+from tui.progress import ProgressCallback, ProgressEvent, time_left
+from tui.settings import CACHE_ENV, settings
 
-Progress = Callable[[str, float], None]
-
-CACHE_ENV = "LOGITFORK_CACHE_DIR"
 CACHE_FORMAT = 1  # bump when the folder layout changes; older folders are rebuilt
 MARKER = "logitfork-cache.json"  # written last: a folder without it is not a cache
 WEIGHTS = "model.safetensors"
@@ -50,9 +48,9 @@ _IDENTIFIER = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
 
 def cache_root() -> Path:
     """Where logitfork keeps converted models: `LOGITFORK_CACHE_DIR` or the user cache dir."""
-    override = os.environ.get(CACHE_ENV)
-    if override:
-        return Path(override).expanduser()
+    override = settings().cache_dir
+    if override is not None:
+        return override
     import platformdirs
 
     return Path(platformdirs.user_cache_dir("logitfork"))
@@ -136,11 +134,13 @@ def write_direct_record(folder: Path, tokenizer: Any) -> None:
         write_atomic(folder / DIRECT, json.dumps(record, indent=2) + "\n")
 
 
-def convert_gguf(gguf_file: Path, folder: Path, progress: Progress) -> None:
+def convert_gguf(gguf_file: Path, folder: Path, progress: ProgressCallback) -> None:
     """De-quantise `gguf_file` through transformers and publish the result as `folder`.
 
-    `progress(stage, fraction)` hears about each stage, fraction rising to 1.0.
-    On any failure the temporary folder is removed and `folder` is left untouched.
+    `progress` hears the de-quantisation in bytes of the GGUF's tensors (with the time
+    left), then the writing of the cache (the caller checks the free disk space first:
+    `tui.model.sizing.check_disk`). On any failure the temporary folder is removed and
+    `folder` is left untouched.
     """
     parent = folder.parent
     try:
@@ -158,29 +158,42 @@ def convert_gguf(gguf_file: Path, folder: Path, progress: Progress) -> None:
         shutil.rmtree(temp, ignore_errors=True)
 
 
-def read_gguf(gguf_file: Path, progress: Progress) -> tuple[Any, Any]:
+def read_gguf(gguf_file: Path, progress: ProgressCallback) -> tuple[Any, Any]:
     """(model, tokenizer) read by transformers' own GGUF loader, in float32."""
     import torch
     from transformers import AutoModelForCausalLM, AutoTokenizer
 
     common = {"gguf_file": gguf_file.name, "local_files_only": True, "trust_remote_code": False}
-    progress("rebuilding the tokenizer from GGUF metadata", 0.02)
+    task = f"converting {gguf_file.name} (once)"
+    progress(ProgressEvent(task, 0, None, "bytes", "rebuilding the tokenizer from GGUF metadata"))
     tokenizer = AutoTokenizer.from_pretrained(str(gguf_file.parent), **common)
-    progress("de-quantising weights", 0.25)
-    with _tensor_progress(lambda done: progress("de-quantising weights", 0.25 + 0.6 * done)):
+    started = time.monotonic()
+
+    def tensors_done(done: int, total: int) -> None:
+        progress(ProgressEvent(task, done, total, "bytes", time_left(done, total, started)))
+
+    with _tensor_progress(tensors_done):
         model = AutoModelForCausalLM.from_pretrained(str(gguf_file.parent), dtype=torch.float32, **common)
     return model, tokenizer
 
 
-def write_conversion(gguf_file: Path, folder: Path, progress: Progress) -> None:
-    """Write the converted model into the (empty, temporary) `folder`; marker last."""
+def write_conversion(gguf_file: Path, folder: Path, progress: ProgressCallback) -> None:
+    """Write the converted model into the (empty, temporary) `folder`; marker last.
+
+    The tokenizer's class goes into the direct-load record too, so that even the
+    first load after a conversion reads the weights directly.
+    """
     import transformers
     from safetensors.torch import save_file
 
     with quiet_transformers():
         model, tokenizer = read_gguf(gguf_file, progress)
-        progress("writing the cache", 0.87)
-        save_file(unaliased_state_dict(model), str(folder / WEIGHTS), metadata={"format": "pt"})
+        state = unaliased_state_dict(model)
+        size = sum(t.numel() * t.element_size() for t in state.values())
+        task = "writing the converted model"
+        progress(ProgressEvent(task, 0, size, "bytes"))
+        save_file(state, str(folder / WEIGHTS), metadata={"format": "pt"})
+        del state
         config = model.config
         if hasattr(config, "quantization_config"):
             del config.quantization_config  # the weights are plain float32 now
@@ -188,6 +201,7 @@ def write_conversion(gguf_file: Path, folder: Path, progress: Progress) -> None:
         config.save_pretrained(folder)
         model.generation_config.save_pretrained(folder)
         tokenizer.save_pretrained(folder)
+        write_direct_record(folder, tokenizer)
     marker = {
         "format": CACHE_FORMAT,
         "source": str(gguf_file),
@@ -196,7 +210,7 @@ def write_conversion(gguf_file: Path, folder: Path, progress: Progress) -> None:
     }
     (folder / MARKER).write_text(json.dumps(marker, indent=2) + "\n", encoding="utf-8")
     _sync_to_disk(folder)
-    progress("cache written", 1.0)
+    progress(ProgressEvent(task, size, size, "bytes"))
 
 
 def unaliased_state_dict(model: Any) -> dict[str, Any]:
@@ -252,12 +266,13 @@ def _remove_stale_temps(parent: Path) -> None:
 
 
 @contextmanager
-def _tensor_progress(report: Callable[[float], None]) -> Iterator[None]:
-    """Report per-tensor progress of transformers' GGUF de-quantisation loop.
+def _tensor_progress(report: Callable[[int, int], None]) -> Iterator[None]:
+    """Report (bytes done, bytes in all) of transformers' GGUF de-quantisation loop.
 
-    That loop iterates through `tqdm`, looked up in its module; swapping in a counting
-    generator while the load runs gives fractions without tqdm's own bar. If the seam
-    moves in another transformers version, the load still works, just without steps.
+    That loop iterates over the GGUF reader's tensors through `tqdm`, looked up in its
+    module; swapping in a counting generator while the load runs gives progress without
+    tqdm's own bar. If the seam moves in another transformers version, the load still
+    works, just without steps.
     """
     try:
         from transformers import modeling_gguf_pytorch_utils as gguf_utils
@@ -271,9 +286,12 @@ def _tensor_progress(report: Callable[[float], None]) -> Iterator[None]:
 
     def counting(iterable: Any, *args: Any, **kwargs: Any) -> Iterator[Any]:
         items = list(iterable)
-        for index, item in enumerate(items):
+        sizes = [int(getattr(item, "n_bytes", 0) or 0) or 1 for item in items]
+        total, done = sum(sizes), 0
+        for item, size in zip(items, sizes):
             yield item
-            report((index + 1) / max(len(items), 1))
+            done += size
+            report(done, total)
 
     gguf_utils.tqdm = counting
     try:
@@ -296,26 +314,3 @@ def quiet_transformers() -> Iterator[None]:
         hf_logging.set_verbosity(level)
         if bars:
             hf_logging.enable_progress_bar()
-
-
-class TextProgressBar:
-    """A one-line text bar, redrawn in place with carriage returns: ``title [####....]  40%  stage``."""
-
-    def __init__(self, title: str, stream: TextIO | None = None, width: int = 28) -> None:
-        self.title = title
-        self.stream = stream if stream is not None else sys.stderr
-        self.width = width
-        self._last: tuple[str, int] | None = None
-
-    def __call__(self, stage: str, fraction: float) -> None:
-        fraction = min(max(fraction, 0.0), 1.0)
-        percent = int(fraction * 100)
-        if (stage, percent) == self._last:
-            return
-        self._last = (stage, percent)
-        filled = int(fraction * self.width)
-        bar = "#" * filled + "." * (self.width - filled)
-        self.stream.write(f"\r{self.title} [{bar}] {percent:3d}%  {stage:<44}")
-        if fraction >= 1.0:
-            self.stream.write("\n")
-        self.stream.flush()

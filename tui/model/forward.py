@@ -11,17 +11,17 @@ No Textual, no numpy math: tensors in, tensors out.
 
 from __future__ import annotations
 
-import os
 from typing import TYPE_CHECKING, Any, Sequence
 
 import torch
 
+from tui.model import transformers_internals as hf
 from tui.model.kv import KV
+from tui.settings import FORWARD_ENV, settings
 
 if TYPE_CHECKING:
     from tui.model.lean_llama import LeanRunner
 
-FORWARD_ENV = "LOGITFORK_FORWARD"  # auto (default), lean or generic
 
 
 class Runner:
@@ -37,26 +37,22 @@ class Runner:
     @torch.inference_mode()
     def prefill(self, ids: Sequence[Sequence[int]]) -> tuple[KV, torch.Tensor]:
         """Run whole equal-length sequences; return their cache and last logits (B, V)."""
-        from transformers import DynamicCache
-
         x = torch.as_tensor([list(r) for r in ids], dtype=torch.long)  # (B, T)
-        cache = DynamicCache(config=self.config)
+        cache = hf.new_cache(self.config)
         out = self.model(input_ids=x, cache=cache, use_cache=True, logits_to_keep=1)
-        return _to_kv(cache), out.logits[:, -1, :].float()
+        return hf.kv_of(cache), out.logits[:, -1, :].float()
 
     @torch.inference_mode()
     def extend(self, kv: KV, ids: Sequence[Sequence[int]]) -> tuple[KV, torch.Tensor]:
         """Feed equal-length token blocks (B, T) after an existing cache of B rows."""
-        from transformers import DynamicCache
-
         x = torch.as_tensor([list(r) for r in ids], dtype=torch.long)
         start = kv.length
-        cache = DynamicCache(ddp_cache_data=list(kv.views()), config=self.config)
+        cache = hf.new_cache(self.config, kv)
         pos = torch.arange(start, start + x.shape[1]).unsqueeze(0).expand(x.shape[0], -1)
         out = self.model(input_ids=x, cache=cache, use_cache=True,
                          position_ids=pos, cache_position=torch.arange(start, start + x.shape[1]),
                          logits_to_keep=1)
-        return _to_kv(cache), out.logits[:, -1, :].float()
+        return hf.kv_of(cache), out.logits[:, -1, :].float()
 
     def step(self, kv: KV, tokens: Sequence[int]) -> tuple[KV, torch.Tensor]:
         """One decode step: one new token per row. Returns the cache and logits (B, V)."""
@@ -70,13 +66,8 @@ class Runner:
 
 
 def forward_choice() -> str:
-    """`LOGITFORK_FORWARD`: auto (unset), lean or generic; UserError for anything else."""
-    from tui.errors import UserError
-
-    choice = os.environ.get(FORWARD_ENV, "auto").strip().lower() or "auto"
-    if choice not in ("auto", "lean", "generic"):
-        raise UserError(f"{FORWARD_ENV}: must be auto, lean or generic, got {choice!r}")
-    return choice
+    """`LOGITFORK_FORWARD` (`tui.settings`): auto, lean or generic."""
+    return settings().forward
 
 
 def make_runner(source: Any) -> "Runner | LeanRunner":
@@ -105,6 +96,3 @@ def make_runner(source: Any) -> "Runner | LeanRunner":
         raise UserError(f"{FORWARD_ENV}=lean: {reason}; unset it to use the generic path")
     return Runner(source)
 
-
-def _to_kv(cache: Any) -> KV:
-    return KV(tuple((layer.keys, layer.values) for layer in cache.layers))

@@ -8,7 +8,9 @@ runs the same computation with everything prepared once:
 - every weight packed once for oneDNN (`torch.ops.mkldnn`), whose fp32 kernels run several
   times faster than torch's default (MKL) at 2-8 rows on this CPU; in float32 each sum runs
   over chunks of input columns (see `PackedLinear`) to stay within 1e-4 of transformers;
-  plain `F.linear` where oneDNN is missing;
+  prefill and decode both run on the packed copy, so a checkpoint's own tensors are
+  freed once packed (a transformers model keeps its own); plain `F.linear` where oneDNN
+  is missing;
 - rotary cos/sin tables precomputed per position;
 - a preallocated KV cache written in place (ownership rule: `tui.model.forward.KV`);
 - SDPA attention over the cache; at decode the query heads of a group share one kv head
@@ -20,6 +22,7 @@ and `models/qwen2/modeling_qwen2.py`; tests/test_forward.py holds logits to 1e-4
 
 from __future__ import annotations
 
+import copy
 from dataclasses import dataclass
 from functools import partial
 from typing import Any, Callable, Sequence
@@ -27,8 +30,9 @@ from typing import Any, Callable, Sequence
 import torch
 import torch.nn.functional as F
 
+from tui.model import transformers_internals as hf
 from tui.model.kv import KV, WriteMark
-from tui.model.llama_checkpoint import SUPPORTED_MODELS, LlamaCheckpoint, LlamaShape
+from tui.model.llama_checkpoint import SUPPORTED_MODELS, LlamaCheckpoint, LlamaShape, config_refusal
 
 STATIC_ROPE = ("default", "linear", "llama3")  # inv_freq fixed at load; dynamic/longrope/yarn refused
 CACHE_BUCKET = 256  # cache capacity grows in steps of this many positions
@@ -39,20 +43,19 @@ _LINEAR_ADD = getattr(getattr(torch.ops.mkldnn, "_linear_pointwise", None), "bin
 
 
 def lean_refusal(model: Any) -> str | None:
-    """Why the lean path cannot run `model`, or None when it can."""
-    cfg = getattr(model, "config", None)
-    kind = getattr(cfg, "model_type", None)
-    if kind not in SUPPORTED_MODELS or type(model).__name__ != SUPPORTED_MODELS[kind]:
-        return f"{type(model).__name__} ({kind}) is not a llama-family causal LM"
-    if getattr(cfg, "hidden_act", None) != "silu":
-        return f"hidden_act {cfg.hidden_act!r} is not silu"
-    rope = getattr(cfg, "rope_parameters", None) or {}
-    if "rope_type" not in rope:
-        return "per-layer rope parameters are not supported"
-    if rope["rope_type"] not in STATIC_ROPE:
-        return f"rope type {rope['rope_type']!r} is not supported"
-    if "sliding_attention" in (getattr(cfg, "layer_types", None) or ()):
-        return "sliding-window attention is not supported"
+    """Why the lean path cannot run `model`, or None when it can.
+
+    The model's config must pass the same allow-list as a checkpoint read directly
+    (`tui.model.llama_checkpoint.config_refusal`), here with the static rope types, whose
+    frequencies the lean path takes from transformers' own rotary module.
+    """
+    kind = getattr(getattr(model, "config", None), "model_type", None)
+    name = hf.model_class_name(model)
+    if kind not in SUPPORTED_MODELS or name != SUPPORTED_MODELS[kind]:
+        return f"{name} ({kind}) is not a llama-family causal LM"
+    reason = hf.version_refusal() or config_refusal(model.config.to_dict(), STATIC_ROPE)
+    if reason is not None:
+        return reason
     weight = model.get_input_embeddings().weight
     if weight.device.type != "cpu" or not weight.dtype.is_floating_point:
         return f"weights on {weight.device} in {weight.dtype}: the lean path runs float weights on the CPU"
@@ -61,71 +64,75 @@ def lean_refusal(model: Any) -> str | None:
 
 def shape_of_model(model: Any) -> LlamaShape:
     """The lean path's numbers, read from a loaded model (its own rotary frequencies)."""
-    cfg, body = model.config, model.model
+    cfg, parts = model.config, hf.model_parts(model)
     heads = cfg.num_attention_heads
-    rotary = body.rotary_emb  # transformers' own inv_freq, so rope scaling matches it
     return LlamaShape(
-        layers=len(body.layers), heads=heads, kv_heads=cfg.num_key_value_heads,
+        layers=parts.layers, heads=heads, kv_heads=cfg.num_key_value_heads,
         head_dim=getattr(cfg, "head_dim", None) or cfg.hidden_size // heads,
-        hidden=cfg.hidden_size, eps=float(body.norm.variance_epsilon),
-        inv_freq=rotary.inv_freq.detach().float(), rope_scale=float(rotary.attention_scaling),
+        hidden=cfg.hidden_size, eps=parts.norm_eps,
+        inv_freq=parts.inv_freq, rope_scale=parts.rope_scale,
         max_positions=int(getattr(cfg, "max_position_embeddings", 4096) or 4096),
     )
 
 
-Rebind = Callable[[str, torch.Tensor], None]  # (state-dict name, the view to use instead)
+Rebind = Callable[[str, "torch.Tensor | None"], None]  # (state-dict name, its view, or None: packed)
 
 
-def _rebind_parameter(model: Any, name: str, view: torch.Tensor) -> None:
-    """Point the model's parameter `name` at `view` (a view of a fused weight)."""
-    model.get_parameter(name).data = view
+def _rebind_or_free(tensors: dict[str, torch.Tensor], name: str, view: torch.Tensor | None) -> None:
+    """A checkpoint's tensor swapped for its view of the fused weight, or freed once packed."""
+    if view is None:
+        tensors.pop(name, None)
+    else:
+        tensors[name] = view
+
+
+def _rebind_model(model: Any, name: str, view: torch.Tensor | None) -> None:
+    """A model's parameter pointed at its view; packed, the model keeps its own weights."""
+    if view is not None:
+        hf.rebind_parameter(model, name, view)
 
 
 class PackedLinear:
     """Linears that read the same input, as one: y = x [W1; W2; ...]^T + [b1; b2; ...] (+ residual).
 
-    Decode steps run oneDNN on the fused weight, packed once, in chunks of at most
-    `k_chunk` input columns whose partial sums are then added: oneDNN adds up a whole
-    row in one fp32 chain, and shorter chains keep its logits within 1e-4 of
-    transformers' (measured by `make bench`). Blocks of tokens (prefill, whole-sequence
-    logits) run the original weights with F.linear, the kernels transformers uses.
+    Packed (oneDNN present), the fused weight is reordered once for oneDNN, in chunks of
+    at most `k_chunk` input columns whose partial sums are then added: oneDNN adds up a
+    whole row in one fp32 chain, and shorter chains keep its logits within 1e-4 of
+    transformers' (measured by `make bench`). Every call runs on the packed chunks, so
+    the original weights are no longer needed: their owner may free them (`LeanRunner`
+    does for a checkpoint), and the packed copy is the only one.
     Unpacked (no oneDNN), one fused copy serves every call and the parts become views of
     it; the owner of the original weights swaps them for `views()` (no extra memory).
     """
 
     def __init__(self, parts: Sequence[tuple[torch.Tensor, torch.Tensor | None]], packed: bool,
                  k_chunk: int | None = None) -> None:
-        self.parts = tuple(parts)  # (weight (out, in), bias (out,) or None), shared with the owner
-        self.bias = _cat_bias(self.parts)
+        parts = tuple(parts)  # (weight (out, in), bias (out,) or None), shared with the owner
+        self.rows = tuple(int(w.shape[0]) for w, _ in parts)
+        self.bias = _cat_bias(parts)
         self.packed = packed
-        weights = [w for w, _ in self.parts]
+        weights = [w for w, _ in parts]
         fused = weights[0] if len(weights) == 1 else torch.cat(weights)  # (sum out, in)
         k = fused.shape[1]
         n = 1 if not k_chunk else -(-k // k_chunk)  # equal chunks, none longer than k_chunk
         size = -(-k // n)
         self.bounds = tuple((a, min(a + size, k)) for a in range(0, k, size))
-        if packed:  # the packed chunks and the parts cover every use; `fused` is dropped
+        if packed:  # the packed chunks cover every use; `fused` and the parts are dropped
             self.chunks = tuple(torch.ops.mkldnn._reorder_linear_weight(fused[:, a:b].contiguous())
                                 for a, b in self.bounds)
         else:
             self.weight = fused
-            self.parts = tuple((view, b) for view, (_, b) in zip(self.views(), self.parts))
 
     def views(self) -> tuple[torch.Tensor, ...]:
         """Unpacked: each part's weight as a view of the fused one, in order."""
-        rows = [w.shape[0] for w, _ in self.parts]
-        starts = [sum(rows[:i]) for i in range(len(rows))]
-        return tuple(self.weight[a:a + r] for a, r in zip(starts, rows))
+        starts = [sum(self.rows[:i]) for i in range(len(self.rows))]
+        return tuple(self.weight[a:a + r] for a, r in zip(starts, self.rows))
 
-    def __call__(self, x: torch.Tensor, residual: torch.Tensor | None = None,
-                 decode: bool = True) -> torch.Tensor:
+    def __call__(self, x: torch.Tensor, residual: torch.Tensor | None = None) -> torch.Tensor:
         # x: (N, in), residual: (N, out) -> (N, out)
-        if self.packed and decode:
-            return self._onednn(x, residual)
         if self.packed:
-            y = torch.cat([F.linear(x, w, b) for w, b in self.parts], dim=-1)
-        else:
-            y = F.linear(x, self.weight, self.bias)
+            return self._onednn(x, residual)
+        y = F.linear(x, self.weight, self.bias)
         return y if residual is None else residual + y
 
     def _onednn(self, x: torch.Tensor, residual: torch.Tensor | None) -> torch.Tensor:
@@ -195,13 +202,16 @@ class LeanRunner:
         (K_CHUNK; None: in float32 only, as each partial sum would be rounded to bfloat16)."""
         if isinstance(source, LlamaCheckpoint):
             shape, tensors = source.shape, source.tensors
-            rebind = tensors.__setitem__  # unpacked: the checkpoint keeps views of the fused weights
+            if "model.layers.0.self_attn.q_proj.weight" not in tensors:
+                raise ValueError("lean path: this checkpoint was packed into a runner already; "
+                                 "copy that runner (`LeanRunner.fresh`) instead")
+            rebind: Rebind = partial(_rebind_or_free, tensors)  # the checkpoint keeps views, or frees
         else:
             reason = lean_refusal(source)
             if reason is not None:
                 raise ValueError(f"lean path: {reason}")
-            shape, tensors = shape_of_model(source), dict(source.state_dict())
-            rebind = partial(_rebind_parameter, source)  # unpacked: the model reads the fused weights
+            shape, tensors = shape_of_model(source), hf.state_dict(source)
+            rebind = partial(_rebind_model, source)  # unpacked: the model reads the fused weights
         self.dtype = tensors["model.embed_tokens.weight"].dtype
         self.packed = onednn_works(self.dtype) if packed is None else packed
         chunked = self.dtype == torch.float32 if chunked is None else chunked
@@ -216,6 +226,15 @@ class LeanRunner:
         head = tensors["lm_head.weight"]
         self.lm_head = PackedLinear([(head, None)], self.packed, HEAD_K_CHUNK if chunked else None)  # E -> V
         self.vocab_size = int(head.shape[0])
+        if self.packed and head is not self.embed:
+            rebind("lm_head.weight", None)
+        elif self.packed and isinstance(source, LlamaCheckpoint) and source.embedding_rows is not None:
+            # tied: the packed head holds the matrix; lookups read rows off the file mapping,
+            # so the embedding is not held a second time
+            self.embed = source.embedding_rows
+            rebind("model.embed_tokens.weight", None)
+            rebind("lm_head.weight", None)
+        del head
         self.inv_freq = shape.inv_freq  # (D/2,) float32, transformers' own values
         self.rope_scale = shape.rope_scale
         self.cos = self.sin = torch.empty(0, self.head_dim, dtype=self.dtype)
@@ -226,7 +245,10 @@ class LeanRunner:
             keys = [p + name for name in names]
             fused = PackedLinear([(tensors[k + ".weight"], tensors.get(k + ".bias")) for k in keys],
                                  self.packed, self.k_chunk)
-            if not self.packed and len(keys) > 1:  # the owner drops its copies for views
+            if self.packed:  # the packed copy is the only one needed: the owner may free its own
+                for key in keys:
+                    rebind(key + ".weight", None)
+            elif len(keys) > 1:  # the owner drops its copies for views
                 for key, view in zip(keys, fused.views()):
                     rebind(key + ".weight", view)
             return fused
@@ -239,6 +261,11 @@ class LeanRunner:
             gate_up=linear(("mlp.gate_proj", "mlp.up_proj")),
             down=linear(("mlp.down_proj",)),
         )
+
+    def fresh(self) -> "LeanRunner":
+        """Another runner on the same packed weights (a runner holds no session state
+        besides its rotary tables, which it replaces rather than changes in place)."""
+        return copy.copy(self)
 
     def _rope_tables(self, n: int) -> None:
         """cos and sin (n, D) as transformers computes them; sin's first half negated."""
@@ -262,7 +289,7 @@ class LeanRunner:
         """Feed equal-length token blocks (B, T) after an existing cache of B rows."""
         x = torch.as_tensor([list(r) for r in ids], dtype=torch.long)  # (B, T)
         kv, h = self._forward(x, kv)
-        return kv, self._logits(h[:, -1], decode=x.shape[1] == 1).float()  # (B, V)
+        return kv, self._logits(h[:, -1]).float()  # (B, V)
 
     def step(self, kv: KV, tokens: Sequence[int]) -> tuple[KV, torch.Tensor]:
         """One decode step: one new token per row. Returns the cache and logits (B, V)."""
@@ -272,7 +299,7 @@ class LeanRunner:
     def logits_of(self, ids: Sequence[int]) -> torch.Tensor:
         """Logits (T, V) of a whole sequence, no cache kept: for log-likelihoods and inspect."""
         _, h = self._forward(torch.as_tensor([list(ids)], dtype=torch.long), KV())
-        return self._logits(h[0], decode=False).float()
+        return self._logits(h[0]).float()
 
     # ----- the model -------------------------------------------------------------------
 
@@ -287,22 +314,21 @@ class LeanRunner:
             self._rope_tables(max(end, 2 * self.cos.shape[0]))
         cos, sin = self.cos[start:end], self.sin[start:end]  # (T, D)
         Hq, Hkv, D = self.n_heads, self.n_kv, self.head_dim
-        x = F.embedding(ids, self.embed).view(B * T, self.hidden)  # (BT, E)
-        dec = T == 1  # one token per row: the packed weights; a block: transformers' kernels
+        x = F.embedding(ids, self.embed).to(self.dtype).view(B * T, self.hidden)  # (BT, E)
         for w, (keys, values) in zip(self.layers, kv.layers):
             # attention: fused q/k/v, rotary on q and k together, cache written in place
             h = F.rms_norm(x, (self.hidden,), w.attn_norm, self.eps)  # (BT, E)
-            qkv = w.qkv(h, decode=dec).view(B, T, Hq + 2 * Hkv, D).transpose(1, 2)  # (B, Hq+2Hkv, T, D)
+            qkv = w.qkv(h).view(B, T, Hq + 2 * Hkv, D).transpose(1, 2)  # (B, Hq+2Hkv, T, D)
             qk = qkv[:, :Hq + Hkv]
             qk = qk * cos + qk.roll(D // 2, dims=-1) * sin  # (B, Hq+Hkv, T, D)
             keys[:, :, start:end] = qk[:, Hq:]
             values[:, :, start:end] = qkv[:, Hq + Hkv:]
             att = self._attend(qk[:, :Hq], keys[:, :, :end], values[:, :, :end], start)  # (BT, Hq D)
-            x = w.out(att, residual=x, decode=dec)  # (BT, E)
+            x = w.out(att, residual=x)  # (BT, E)
             # MLP: fused gate/up, SiLU gate
             h = F.rms_norm(x, (self.hidden,), w.mlp_norm, self.eps)
-            gate, up = w.gate_up(h, decode=dec).chunk(2, dim=-1)  # (BT, I) each
-            x = w.down(F.silu(gate) * up, residual=x, decode=dec)  # (BT, E)
+            gate, up = w.gate_up(h).chunk(2, dim=-1)  # (BT, I) each
+            x = w.down(F.silu(gate) * up, residual=x)  # (BT, E)
         mark = kv.mark
         assert mark is not None
         mark.end = end
@@ -326,10 +352,10 @@ class LeanRunner:
                                                  scale=self.scale, enable_gqa=True)
         return out.transpose(1, 2).reshape(B * T, Hq * D)
 
-    def _logits(self, h: torch.Tensor, decode: bool) -> torch.Tensor:
+    def _logits(self, h: torch.Tensor) -> torch.Tensor:
         """Final norm and output projection: hidden (N, E) -> logits (N, V)."""
         h = F.rms_norm(h, (self.hidden,), self.final_norm, self.eps)
-        return self.lm_head(h.contiguous(), decode=decode)
+        return self.lm_head(h.contiguous())
 
     def _room(self, kv: KV, rows: int, extra: int) -> KV:
         """`kv` if it may be written in place for `extra` more positions, else a roomier copy."""

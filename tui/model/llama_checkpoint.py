@@ -6,9 +6,11 @@ only the weights and a dozen numbers. `read_checkpoint` reads `config.json` and
 `model.safetensors` itself and hands back exactly what `LeanRunner` takes from a loaded
 model: the same tensors under the same names, and a `LlamaShape` with the same values.
 
-It refuses (ValueError, with the reason) anything it does not reproduce exactly: other
-architectures or activations, rope types other than "default", sliding windows, sharded
-weights, or a tensor set that differs from what transformers' classes would read.
+It refuses (ValueError, with the reason) anything it does not reproduce exactly: a
+config key or value outside its allow-list (`config_refusal`: other architectures or
+activations, rope types other than "default", sliding windows, any key it does not
+know), or a tensor set that differs from what transformers' classes would read. One
+`model.safetensors` or shards with `model.safetensors.index.json` are read.
 The caller then loads the folder through transformers. References: transformers 5.24.0
 `models/llama/modeling_llama.py` (`LlamaRotaryEmbedding.compute_default_rope_parameters`,
 the modules' names and biases) and `models/qwen2/modeling_qwen2.py`; tests/test_checkpoint.py
@@ -20,12 +22,13 @@ from __future__ import annotations
 import json
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Any, Callable
 
 import torch
 
 SUPPORTED_MODELS = {"llama": "LlamaForCausalLM", "qwen2": "Qwen2ForCausalLM"}
 WEIGHTS = "model.safetensors"
+INDEX = "model.safetensors.index.json"  # the weight map of a sharded folder
 _INTS = ("hidden_size", "num_hidden_layers", "num_attention_heads", "num_key_value_heads",
          "intermediate_size", "vocab_size", "max_position_embeddings")
 
@@ -56,10 +59,11 @@ class LlamaCheckpoint:
     shape: LlamaShape
     tensors: dict[str, torch.Tensor]
     config: dict[str, Any]
+    embedding_rows: torch.Tensor | None = None  # the file's embedding, mapped, not read (see read_checkpoint)
 
     @property
     def dtype(self) -> torch.dtype:
-        return self.tensors["model.embed_tokens.weight"].dtype
+        return self.tensors["model.norm.weight"].dtype
 
     def cast(self, dtype: torch.dtype) -> None:
         """Cast every tensor, and round the rotary frequencies to `dtype` and back.
@@ -87,31 +91,127 @@ def read_config(folder: Path) -> dict[str, Any]:
     return config
 
 
-def config_refusal(config: dict[str, Any]) -> str | None:
-    """Why this config cannot be read directly (transformers must load it), or None."""
+def config_refusal(config: dict[str, Any], rope_types: tuple[str, ...] = ("default",)) -> str | None:
+    """Why this config cannot run on the lean path (transformers must run it), or None.
+
+    An allow-list: every key must be one `ALLOWED_KEYS` names for this model type, with
+    a value its check accepts; any other key (soft-capping, q/k norms, per-layer eps, a
+    quantisation config...) could change the maths, so its name is the reason. Keys in
+    `INERT_KEYS` are metadata, training-only or generation defaults, which no forward
+    pass reads. `rope_types`: the rope types the caller can reproduce (the direct reader:
+    only "default"; a runner on a loaded model reads transformers' own frequencies).
+    """
     kind = config.get("model_type")
     if kind not in SUPPORTED_MODELS:
         return f"model_type {kind!r} is not llama or qwen2"
-    if config.get("architectures") != [SUPPORTED_MODELS[kind]]:
-        return f"architectures {config.get('architectures')!r} is not [{SUPPORTED_MODELS[kind]!r}]"
-    if config.get("hidden_act") != "silu":
-        return f"hidden_act {config.get('hidden_act')!r} is not silu"
+    arch = config.get("architectures")
+    if arch is not None and arch != [SUPPORTED_MODELS[kind]]:
+        return f"architectures {arch!r} is not [{SUPPORTED_MODELS[kind]!r}]"
+    checks = {**_COMMON_CHECKS, **_FAMILY_CHECKS[kind]}
+    for key, value in config.items():
+        if key in INERT_KEYS:
+            continue
+        if key not in checks:
+            return f"config key {key!r} is not on the lean path's allow-list (it may change the maths)"
+        reason = checks[key](value)
+        if reason:
+            return f"{key} {_short(value)} {reason}"
     for key in _INTS:
-        if not _positive_int(config.get(key)):
-            return f"{key} is missing or not a positive integer"
-    if not isinstance(config.get("rms_norm_eps"), (int, float)):
-        return "rms_norm_eps is missing"
-    if config.get("head_dim") is not None and not _positive_int(config["head_dim"]):
-        return "head_dim is not a positive integer"
-    if not isinstance(config.get("tie_word_embeddings"), bool):
-        return "tie_word_embeddings is missing"
+        if key not in config:
+            return f"{key} is missing"
+    for key in ("rms_norm_eps", "tie_word_embeddings", "hidden_act"):
+        if key not in config:
+            return f"{key} is missing"
+    rope = _rope(config)
+    if rope is None:
+        return "no rope_theta (rope_parameters or rope_theta) is given"
+    if rope.get("rope_type", "default") not in rope_types:
+        return f"rope_type {rope.get('rope_type')!r} is not one of {', '.join(rope_types)}"
+    extra = set(rope) - ({"rope_type", "rope_theta"} if rope_types == ("default",) else set(rope))
+    if extra:
+        return f"rope_parameters key {sorted(extra)[0]!r} is not on the allow-list"
+    return None
+
+
+def _short(value: object) -> str:
+    text = repr(value)
+    return text if len(text) <= 40 else text[:37] + "..."
+
+
+def _is(kind: type | tuple[type, ...], what: str) -> Callable[[Any], str]:
+    def check(value: Any) -> str:
+        ok = isinstance(value, kind) and not (kind is not bool and isinstance(value, bool))
+        return "" if ok else f"is not {what}"
+    return check
+
+
+def _equals(*allowed: Any) -> Callable[[Any], str]:
+    return lambda value: "" if any(value == a and type(value) is type(a) for a in allowed) else \
+        f"is not {' or '.join(repr(a) for a in allowed)}"
+
+
+def _positive(value: Any) -> str:
+    return "" if _positive_int(value) else "is not a positive integer"
+
+
+def _positive_or_none(value: Any) -> str:
+    return "" if value is None or _positive_int(value) else "is not a positive integer"
+
+
+def _rope_parameters(value: Any) -> str:
+    if not isinstance(value, dict) or "rope_type" not in value:
+        return "is not one set of rope parameters (per-layer ones are not supported)"
+    if not isinstance(value.get("rope_theta"), (int, float)) or isinstance(value.get("rope_theta"), bool):
+        return "has no numeric rope_theta"
+    if value.get("partial_rotary_factor", 1.0) != 1.0:
+        return "has a partial rotary factor"
+    return ""
+
+
+def _full_attention_only(value: Any) -> str:
+    ok = value is None or (isinstance(value, list) and all(v == "full_attention" for v in value))
+    return "" if ok else "asks for attention other than full attention (sliding windows)"
+
+
+_NUMBER = _is((int, float), "a number")
+_COMMON_CHECKS: dict[str, Callable[[Any], str]] = {
+    **{key: _positive for key in _INTS},
+    "hidden_act": _equals("silu"),
+    "rms_norm_eps": _NUMBER,
+    "head_dim": _positive_or_none,
+    "tie_word_embeddings": _is(bool, "true or false"),
+    "rope_parameters": _rope_parameters,
+    "rope_theta": _NUMBER,  # the layout before rope_parameters
+    "rope_scaling": _equals(None),  # ditto: None means the default rope
+    "layer_types": _full_attention_only,
+    "chunk_size_feed_forward": _equals(0),
+    "is_encoder_decoder": _equals(False),
+    "attention_dropout": _NUMBER,  # dropout is off in eval mode
+}
+_FAMILY_CHECKS: dict[str, dict[str, Callable[[Any], str]]] = {
+    "llama": {"attention_bias": _is(bool, "true or false"), "mlp_bias": _is(bool, "true or false"),
+              "pretraining_tp": _equals(1)},
+    "qwen2": {"use_sliding_window": _equals(False),
+              "sliding_window": _positive_or_none, "max_window_layers": _positive_or_none},  # unread without it
+}
+# Keys no forward pass reads: names, token ids, generation and training settings.
+INERT_KEYS = frozenset({
+    "model_type", "architectures", "_name_or_path", "_model_name_or_path", "name_or_path",
+    "transformers_version", "torch_dtype", "dtype", "use_cache", "bos_token_id", "eos_token_id",
+    "pad_token_id", "unk_token_id", "sep_token_id", "decoder_start_token_id", "initializer_range",
+    "id2label", "label2id", "num_labels", "output_attentions", "output_hidden_states",
+    "return_dict", "problem_type", "tokenizer_class", "task_specific_params", "prefix",
+    "finetuning_task", "_commit_hash", "_attn_implementation_autoset", "use_return_dict",
+})
+
+
+def _rope(config: dict[str, Any]) -> dict[str, Any] | None:
+    """The rope parameters in either layout (rope_parameters, or rope_theta + rope_scaling)."""
     rope = config.get("rope_parameters")
-    if not isinstance(rope, dict) or rope.get("rope_type") != "default":
-        return "rope_parameters is missing or its rope_type is not 'default'"
-    if not isinstance(rope.get("rope_theta"), (int, float)) or rope.get("partial_rotary_factor", 1.0) != 1.0:
-        return "rope_parameters needs a rope_theta and no partial rotary factor"
-    if config.get("use_sliding_window") or "sliding_attention" in (config.get("layer_types") or ()):
-        return "sliding-window attention is not supported"
+    if isinstance(rope, dict):
+        return rope
+    if isinstance(config.get("rope_theta"), (int, float)):
+        return {"rope_type": "default", "rope_theta": config["rope_theta"]}
     return None
 
 
@@ -123,7 +223,7 @@ def shape_from_config(config: dict[str, Any]) -> LlamaShape:
         layers=int(config["num_hidden_layers"]), heads=heads,
         kv_heads=int(config["num_key_value_heads"]), head_dim=head_dim,
         hidden=int(config["hidden_size"]), eps=float(config["rms_norm_eps"]),
-        inv_freq=default_inv_freq(config["rope_parameters"]["rope_theta"], head_dim),
+        inv_freq=default_inv_freq(_rope(config)["rope_theta"], head_dim),
         rope_scale=1.0, max_positions=int(config["max_position_embeddings"]),
     )
 
@@ -165,31 +265,113 @@ def expected_shapes(config: dict[str, Any]) -> dict[str, tuple[int, ...]]:
     return out
 
 
-def read_checkpoint(folder: Path) -> LlamaCheckpoint:
-    """The float32 checkpoint in `folder`; ValueError naming what is not read directly."""
-    from safetensors.torch import load_file
+def weight_files(folder: Path) -> dict[str, Path]:
+    """Each tensor's safetensors file: one `model.safetensors`, or the shards that
+    `model.safetensors.index.json` maps; ValueError when there are neither."""
+    single, index = folder / WEIGHTS, folder / INDEX
+    if index.is_file():
+        try:
+            weight_map = json.loads(index.read_text(encoding="utf-8"))["weight_map"]
+        except (OSError, ValueError, KeyError, TypeError) as exc:
+            raise ValueError(f"{INDEX}: unreadable ({exc})") from None
+        if not isinstance(weight_map, dict) or not all(isinstance(v, str) and "/" not in v
+                                                       for v in weight_map.values()):
+            raise ValueError(f"{INDEX}: weight_map must map tensor names to file names in the folder")
+        files = {name: folder / shard for name, shard in weight_map.items()}
+        missing = sorted({f.name for f in files.values() if not f.is_file()})
+        if missing:
+            raise ValueError(f"{INDEX}: shard {missing[0]} is missing")
+        return files
+    if single.is_file():
+        return {name: single for name in safetensors_header(single)}
+    raise ValueError(f"no {WEIGHTS} or {INDEX}")
+
+
+def safetensors_header(path: Path) -> dict[str, dict[str, Any]]:
+    """The tensor entries of a safetensors file's header (dtype, shape, offsets), read
+    without touching the data: 8 bytes of length, then that much JSON (the format's spec)."""
+    with open(path, "rb") as handle:
+        size = int.from_bytes(handle.read(8), "little")
+        if not 0 < size < 100_000_000:
+            raise ValueError(f"{path.name}: not a safetensors file")
+        header = json.loads(handle.read(size))
+    return {k: v for k, v in header.items() if k != "__metadata__"}
+
+
+def parameter_count(folder: Path) -> int:
+    """Numbers stored in the folder's safetensors weights (all files, from their headers)."""
+    total = 0
+    for path in sorted(set(weight_files(folder).values())):
+        for entry in safetensors_header(path).values():
+            count = 1
+            for dim in entry.get("shape", ()):
+                count *= int(dim)
+            total += count
+    return total
+
+
+def read_checkpoint(folder: Path, dtype: torch.dtype = torch.float32) -> LlamaCheckpoint:
+    """The checkpoint in `folder` in `dtype`; ValueError naming what is not read directly.
+
+    Tensors are read one at a time and cast as they come, so a bfloat16 read of a
+    float32 file never holds the float32 copy; a sharded folder is read shard by shard.
+    Every tensor is copied off safetensors' memory map, so each shard's mapping leaves
+    the process once read. `embedding_rows` maps the embedding matrix from its file
+    without reading it: with tied embeddings the lean path packs the matrix for the
+    output projection and looks token rows up there, touching only the rows it reads.
+    """
+    from safetensors import safe_open
 
     config = read_config(folder)
     reason = config_refusal(config)
     if reason is not None:
         raise ValueError(reason)
-    if not (folder / WEIGHTS).is_file():
-        raise ValueError(f"no single {WEIGHTS} (sharded weights are read by transformers)")
-    tensors = load_file(str(folder / WEIGHTS))
+    files = weight_files(folder)
     expected = expected_shapes(config)
     if config["tie_word_embeddings"]:
-        tensors.pop("lm_head.weight", None)  # transformers ties it to the embedding anyway
-    if set(tensors) != set(expected):
-        odd = sorted(set(tensors) ^ set(expected))
+        files.pop("lm_head.weight", None)  # transformers ties it to the embedding anyway
+    if set(files) != set(expected):
+        odd = sorted(set(files) ^ set(expected))
         raise ValueError(f"{len(odd)} tensor name(s) differ from the model class's, e.g. {odd[0]}")
-    for name, want in expected.items():
-        if tuple(tensors[name].shape) != want:
-            raise ValueError(f"{name} has shape {tuple(tensors[name].shape)}, expected {want}")
-        if not tensors[name].dtype.is_floating_point:
-            raise ValueError(f"{name} is {tensors[name].dtype}, not floating point")
-    tensors = {name: t.float() for name, t in tensors.items()}
+    tensors: dict[str, torch.Tensor] = {}
+    for path in sorted(set(files.values())):
+        with safe_open(str(path), framework="pt") as handle:
+            for name in handle.keys():
+                if name not in expected:
+                    continue
+                tensor = handle.get_tensor(name)
+                if tuple(tensor.shape) != expected[name]:
+                    raise ValueError(f"{name} has shape {tuple(tensor.shape)}, expected {expected[name]}")
+                if not tensor.dtype.is_floating_point:
+                    raise ValueError(f"{name} is {tensor.dtype}, not floating point")
+                cast = tensor.to(dtype)
+                if cast is tensor:  # the same dtype: a copy, off the file's mapping
+                    cast = tensor.clone()
+                tensors[name] = cast
+                del tensor, cast
     tensors["lm_head.weight"] = tensors.get("lm_head.weight", tensors["model.embed_tokens.weight"])
-    return LlamaCheckpoint(shape_from_config(config), tensors, config)
+    shape = shape_from_config(config)
+    if dtype != torch.float32:  # as `model.to(dtype)` rounds the rotary buffer (see `cast`)
+        shape = LlamaShape(**{**vars(shape), "inv_freq": shape.inv_freq.to(dtype).float()})
+    rows = mapped_tensor(files["model.embed_tokens.weight"], "model.embed_tokens.weight")
+    return LlamaCheckpoint(shape, tensors, config, rows)
+
+
+_SAFETENSORS_DTYPES = {"F32": torch.float32, "BF16": torch.bfloat16, "F16": torch.float16}
+
+
+def mapped_tensor(path: Path, name: str) -> torch.Tensor | None:
+    """Tensor `name` of a safetensors file as a read-only private mapping of the file
+    (`torch.from_file`: pages are read when touched), or None for a dtype not mapped here."""
+    with open(path, "rb") as handle:
+        size = int.from_bytes(handle.read(8), "little")
+    entry = safetensors_header(path)[name]
+    dtype = _SAFETENSORS_DTYPES.get(entry.get("dtype"))
+    start, end = entry["data_offsets"]
+    if dtype is None or (8 + size + start) % dtype.itemsize:
+        return None
+    raw = torch.from_file(str(path), shared=False, size=path.stat().st_size, dtype=torch.uint8)
+    return raw[8 + size + start:8 + size + end].view(dtype).view(*entry["shape"])
 
 
 def _positive_int(value: object) -> bool:

@@ -44,24 +44,52 @@ class LoadedModel:
     checkpoint: "LlamaCheckpoint | None" = None
     loaded_model: "PreTrainedModel | None" = field(default=None, repr=False)
     load_transformers_model: "Callable[[], PreTrainedModel] | None" = field(default=None, repr=False)
+    path_note: str = ""  # which forward path runs the model, and why: one line for the user
+    dtype_note: str = ""  # why `--dtype auto` chose `dtype`, when it chose bfloat16
+    weights_bytes: int = 0  # the weights in `dtype` (0: not measured)
     _lock: threading.Lock = field(default_factory=threading.Lock, repr=False)
+    _runner: "Runner | LeanRunner | None" = field(default=None, repr=False)
 
     @property
     def model(self) -> "PreTrainedModel":
         """transformers' model, loaded now if this model was read directly (thread-safe)."""
         with self._lock:
-            if self.loaded_model is None:
-                assert self.load_transformers_model is not None
-                self.loaded_model = self.load_transformers_model()
-            return self.loaded_model
+            return self._model_locked()
+
+    def _model_locked(self) -> "PreTrainedModel":
+        if self.loaded_model is None:
+            assert self.load_transformers_model is not None
+            self.loaded_model = self.load_transformers_model()
+        return self.loaded_model
+
+    def cache_shape(self) -> tuple[int, int, int, int]:
+        """(layers, kv heads, head dim, vocabulary): what one KV-cache row costs per position."""
+        if self.checkpoint is not None:
+            shape = self.checkpoint.shape
+            return shape.layers, shape.kv_heads, shape.head_dim, int(self.checkpoint.config["vocab_size"])
+        cfg = self.model.config
+        heads = int(getattr(cfg, "num_attention_heads", 1) or 1)
+        kv = int(getattr(cfg, "num_key_value_heads", None) or heads)
+        head_dim = int(getattr(cfg, "head_dim", None) or int(getattr(cfg, "hidden_size", 64)) // heads)
+        return int(getattr(cfg, "num_hidden_layers", 1)), kv, head_dim, int(getattr(cfg, "vocab_size", 0) or 0)
 
     def runner(self) -> "Runner | LeanRunner":
-        """A fresh runner on the fastest path (`tui.model.forward.make_runner`)."""
+        """A fresh runner on the fastest path (`tui.model.forward.make_runner`).
+
+        The weights are prepared (fused, packed) once per model and shared by every
+        runner: packing a checkpoint frees its original tensors, and a second packed
+        copy per session would double the memory.
+        """
         from tui.model.forward import forward_choice, make_runner
 
-        if self.checkpoint is not None and forward_choice() != "generic":
-            return make_runner(self.checkpoint)
-        return make_runner(self.model)
+        with self._lock:
+            if self._runner is None:
+                direct = self.checkpoint is not None and forward_choice() != "generic"
+                source = self.checkpoint if direct else self._model_locked()
+                self._runner = make_runner(source)
+            runner = self._runner
+        fresh = getattr(runner, "fresh", None)
+        return fresh() if fresh is not None else runner
 
     def encode_prompt(self, prompt: str | None, messages: list[dict] | None) -> list[int]:
         """Token ids for a plain-text prompt or for chat messages (give exactly one).

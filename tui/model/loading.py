@@ -3,10 +3,11 @@
 - Through transformers' Auto classes (`load_transformers`): any save_pretrained folder,
   hub snapshot or conversion-cache folder. For a cache folder it also writes the
   direct-load record (`tui.model.conversion_cache.DirectRecord`).
-- Directly (`load_direct`), for a conversion-cache folder with a record: the tokenizer
-  class the record names and the checkpoint read by `tui.model.llama_checkpoint`, with no
-  transformers model class imported (most of a warm start). Returns None when it
-  cannot, and the caller goes through transformers.
+- Directly (`load_direct`), for a llama or qwen2 folder whose config passes the lean
+  path's allow-list (a save_pretrained folder, a hub snapshot, sharded or not, or a
+  conversion-cache folder with its record): the checkpoint read by
+  `tui.model.llama_checkpoint` in the chosen dtype, with no transformers model class
+  built. Returns the reason when it cannot, and the caller goes through transformers.
 
 torch and transformers are imported inside the functions.
 """
@@ -15,30 +16,26 @@ from __future__ import annotations
 
 import importlib
 import json
-import os
 import time
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Sequence
 
 from tui.errors import UserError, first_line
 from tui.model import conversion_cache as model_cache
-from tui.model.conversion_cache import Progress
 from tui.model.loaded import LoadedModel
 from tui.model.sources import ResolvedSource
+from tui.progress import ProgressCallback, ProgressEvent, no_progress
 
 if TYPE_CHECKING:
     from transformers import PreTrainedModel
 
-LOADER_ENV = "LOGITFORK_LOADER"  # auto (default: direct where it can) or transformers
 CONTEXT_KEYS = ("max_position_embeddings", "n_positions", "n_ctx", "seq_length")  # config keys, in order
 
 
 def load_transformers(source: ResolvedSource, dtype: str, timings: dict[str, float],
-                      report: Progress) -> LoadedModel:
+                      report: ProgressCallback) -> LoadedModel:
     """Load through transformers' Auto classes; for a cache folder, record how (`DirectRecord`)."""
-    model, tokenizer = _load_folder(source, timings, report)
-    if dtype != "float32":
-        _cast(model, dtype)
+    model, tokenizer = _load_folder(source, dtype, timings, report)
     if source.kind == "gguf":
         model_cache.write_direct_record(source.folder, tokenizer)
     config = model.config
@@ -52,47 +49,68 @@ def load_transformers(source: ResolvedSource, dtype: str, timings: dict[str, flo
     )
 
 
-def load_direct(source: ResolvedSource, dtype: str, timings: dict[str, float],
-                report: Progress) -> LoadedModel | None:
-    """Read a cache folder without transformers' model classes, or None when it cannot be.
+def direct_refusal(source: ResolvedSource) -> str | None:
+    """Why `source` cannot be read straight from its files (transformers loads it), or None.
 
-    Needs a `DirectRecord` from this transformers version and a checkpoint that
-    `tui.model.llama_checkpoint` reads exactly; anything else falls back to transformers,
-    which then gives the real error, if any. `LOGITFORK_LOADER=transformers` (or
-    `LOGITFORK_FORWARD=generic`) always takes transformers' way.
+    Cheap: reads config.json and the weight index, never the weights.
     """
+    from tui.model import transformers_internals as hf
+    from tui.model.llama_checkpoint import config_refusal, read_config, weight_files
+
+    if source.weights == "pickle":
+        return "pickled weights are read by transformers"
+    if source.kind == "gguf" and model_cache.read_direct_record(source.folder) is None:
+        return "this cache folder has no tokenizer record from this transformers version"
+    try:
+        reason = hf.version_refusal() or config_refusal(read_config(source.folder))
+        if reason is None:
+            weight_files(source.folder)
+    except ValueError as exc:
+        return str(exc)
+    return reason
+
+
+def load_direct(source: ResolvedSource, dtype: str, timings: dict[str, float],
+                report: ProgressCallback) -> LoadedModel | str:
+    """Read a llama-family folder without transformers' model classes, or say why not.
+
+    A cache folder names its tokenizer class in its `DirectRecord` (a warm start then
+    imports no model code at all); any other folder's tokenizer comes from AutoTokenizer.
+    The weights are read tensor by tensor in `dtype` (`tui.model.llama_checkpoint`), and
+    packing them for the lean path frees the originals. Returns the reason, as a string,
+    when the folder is not read exactly this way: the caller loads it through transformers.
+    """
+    reason = direct_refusal(source)
+    if reason is not None:
+        return reason
     record = model_cache.read_direct_record(source.folder)
-    if record is None:
-        return None
     t = time.perf_counter()
-    report("importing torch", 0.0)
+    report(ProgressEvent("importing torch", 0, 3, "stages"))
     import torch
 
-    from tui.model.forward import forward_choice
     from tui.model.llama_checkpoint import read_checkpoint
 
     timings["import torch"] = time.perf_counter() - t
-    if forward_choice() == "generic":
-        return None
     t = time.perf_counter()
-    report("reading the weights", 0.3)
+    report(ProgressEvent("reading the weights", 1, 3, "stages"))
     try:
         with torch.inference_mode():
-            checkpoint = read_checkpoint(source.folder)
-    except (ValueError, OSError):  # not a checkpoint read exactly: transformers reads it
-        return None
-    if dtype != "float32":
-        checkpoint.cast(getattr(torch, dtype))
+            checkpoint = read_checkpoint(source.folder, getattr(torch, dtype))
+    except (ValueError, OSError) as exc:  # not a checkpoint read exactly: transformers reads it
+        return f"the weights are not read directly: {first_line(exc)}"
     timings["weights"] = time.perf_counter() - t
     t = time.perf_counter()
-    report("loading the tokenizer", 0.6)
+    report(ProgressEvent("loading the tokenizer", 2, 3, "stages"))
     try:
-        tokenizer_class = getattr(importlib.import_module(record.tokenizer_module), record.tokenizer_class)
+        if record is not None:
+            tokenizer_class = getattr(importlib.import_module(record.tokenizer_module), record.tokenizer_class)
+        else:
+            from transformers import AutoTokenizer as tokenizer_class
         with model_cache.quiet_transformers():
             tokenizer = tokenizer_class.from_pretrained(str(source.folder), local_files_only=True,
                                                         trust_remote_code=False)
-    except Exception:  # a changed or damaged folder: transformers' loader says what is wrong
-        return None
+    except Exception as exc:  # a changed or damaged folder: transformers' loader says what is wrong
+        return f"its tokenizer did not load directly ({first_line(exc)})"
     timings["tokenizer"] = time.perf_counter() - t
     config = checkpoint.config
     generation = _read_json(source.folder / "generation_config.json")
@@ -107,19 +125,9 @@ def load_direct(source: ResolvedSource, dtype: str, timings: dict[str, float],
     )
 
 
-def loader_choice() -> str:
-    """`LOGITFORK_LOADER`: auto (unset) or transformers; UserError for anything else."""
-    loader = os.environ.get(LOADER_ENV, "auto").strip().lower() or "auto"
-    if loader not in ("auto", "transformers"):
-        raise UserError(f"{LOADER_ENV}: must be auto or transformers, got {loader!r}")
-    return loader
-
-
 def _load_model_only(source: ResolvedSource, dtype: str) -> "PreTrainedModel":
     """transformers' model for a folder that was first read directly (its tokenizer is loaded)."""
-    model, _ = _load_folder(source, {}, lambda stage, fraction: None, tokenizer=False)
-    if dtype != "float32":
-        _cast(model, dtype)
+    model, _ = _load_folder(source, dtype, {}, no_progress, tokenizer=False)
     return model
 
 
@@ -132,19 +140,21 @@ def _read_json(path: Path) -> dict[str, Any]:
     return value if isinstance(value, dict) else {}
 
 
-def _load_folder(source: ResolvedSource, timings: dict[str, float], report: Progress,
-                 tokenizer: bool = True) -> tuple[Any, Any]:
-    """Float32 model and tokenizer (None unless `tokenizer`) from a save_pretrained-style
-    folder, under inference mode."""
+def _load_folder(source: ResolvedSource, dtype: str, timings: dict[str, float],
+                 report: ProgressCallback, tokenizer: bool = True) -> tuple[Any, Any]:
+    """Model in `dtype` and tokenizer (None unless `tokenizer`) from a save_pretrained-style
+    folder, under inference mode. The weights load in `dtype` (no float32 copy first);
+    `model.to(dtype)` then casts what transformers kept in float32 (the rotary buffer),
+    so the result equals loading in float32 and casting, the reference."""
     folder = str(source.folder)
     common = {"local_files_only": True, "trust_remote_code": False}
     t = time.perf_counter()
-    report("importing torch", 0.0)
+    report(ProgressEvent("importing torch", 0, 4, "stages"))
     import torch
 
     timings["import torch"] = time.perf_counter() - t
     t = time.perf_counter()
-    report("importing transformers", 0.25)
+    report(ProgressEvent("importing transformers", 1, 4, "stages"))
     from transformers import AutoConfig, AutoTokenizer
 
     timings["import transformers"] = time.perf_counter() - t
@@ -155,19 +165,21 @@ def _load_folder(source: ResolvedSource, timings: dict[str, float], report: Prog
             model_class = _causal_lm_class(source, config)  # imports the model's code
             timings["import model code"] = time.perf_counter() - t
             t = time.perf_counter()
-            report("loading the tokenizer", 0.6)
+            report(ProgressEvent("loading the tokenizer", 2, 4, "stages"))
             loaded_tokenizer = AutoTokenizer.from_pretrained(folder, **common) if tokenizer else None
             timings["tokenizer"] = time.perf_counter() - t
             t = time.perf_counter()
-            report("loading the weights", 0.7)
+            report(ProgressEvent("loading the weights", 3, 4, "stages"))
             model = model_class.from_pretrained(
                 folder,
                 config=config,
-                dtype=torch.float32,
+                dtype=getattr(torch, dtype),
                 attn_implementation="sdpa",
                 use_safetensors=source.weights != "pickle",
                 **common,
             )
+            if dtype != "float32":
+                model.to(getattr(torch, dtype))
             model.eval()
             model.requires_grad_(False)
             timings["weights"] = time.perf_counter() - t
@@ -192,14 +204,6 @@ def _causal_lm_class(source: ResolvedSource, config: Any) -> Any:
             f"model {source.name}: its config (model_type {getattr(config, 'model_type', '?')!r}) is not a "
             "causal language model that transformers can generate with; pick a decoder-only model"
         ) from None
-
-
-def _cast(model: Any, dtype: str) -> None:
-    """Cast the loaded float32 model in place (bfloat16 trades accuracy for speed)."""
-    import torch
-
-    with torch.inference_mode():
-        model.to(getattr(torch, dtype))
 
 
 def _eos_ids(named: Sequence[Any], tokenizer: Any, vocab: int) -> tuple[int, ...]:

@@ -124,7 +124,8 @@ def _facts(report: Report) -> Iterator[str]:
               "<br>".join(f"<b>{escape(r)}</b>: {escape(c)}" for r, c in h.messages or ()))
     rows = [
         ("scenario", escape(h.title)), ("created", escape(h.created)),
-        ("model", f"<code>{escape(h.model_name)}</code> ({escape(h.dtype)}) from "
+        ("model", f"<code>{escape(h.model_name)}</code> ({escape(h.dtype)}"
+                  f"{'; ' + escape(h.dtype_note) if h.dtype_note else ''}) from "
                   f"<code>{escape(h.model_source)}</code>"),
         ("prompt", f'<span class="mono">{prompt}</span> '
                    f'<span class="small">({len(h.prompt_ids)} tokens)</span>'),

@@ -49,7 +49,8 @@ def render_md(report: Report) -> Iterator[str]:
     yield "| | |"
     yield "|---|---|"
     for k, v in (
-        ("model", f"{_code(h.model_name)} ({h.dtype}) from {_code(h.model_source)}"),
+        ("model", f"{_code(h.model_name)} ({h.dtype}{'; ' + h.dtype_note if h.dtype_note else ''}) "
+                  f"from {_code(h.model_source)}"),
         ("created", h.created),
         ("prompt", f"{len(h.prompt_ids)} tokens (below)"),
         ("seed", str(h.seed)),

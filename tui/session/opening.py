@@ -25,6 +25,7 @@ class SessionInfo:
     model_name: str
     model_source: str
     dtype: str
+    dtype_note: str = ""  # why `--dtype auto` chose bfloat16 ("" otherwise)
 
 
 def open_session(lm: "LoadedModel", scenario: Scenario, *, seed: int | None = None,
@@ -39,4 +40,4 @@ def open_session(lm: "LoadedModel", scenario: Scenario, *, seed: int | None = No
         max_new_tokens=max_new_tokens or scenario.max_new_tokens,
         stop_strings=scenario.stop, eos_ids=lm.eos_ids, max_context=lm.max_context,
     )
-    return engine, SessionInfo(scenario, lm.name, lm.source, lm.dtype)
+    return engine, SessionInfo(scenario, lm.name, lm.source, lm.dtype, lm.dtype_note)

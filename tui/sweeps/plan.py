@@ -101,3 +101,31 @@ def build_job(spec: SweepSpec, prompts: tuple[Prompt, ...], lm: LoadedModel) -> 
     return SweepJob(prompt_ids=tuple(encoded), recipes=tuple(spec.recipes()),
                     samples=spec.samples, max_new_tokens=spec.max_new_tokens, seed=spec.seed,
                     chunk_rows=spec.chunk_rows, stop=spec.stop)
+
+
+def batch_rows(lm: "LoadedModel", job: "SweepJob", available: int | None = None) -> tuple[int, str]:
+    """How many rows one forward batch can hold with this model and the memory free now,
+    and the line that says so (`tui.model.sizing.rows_per_batch`: half the available
+    memory, each row's KV cache at its longest plus its logits)."""
+    from tui.model import sizing
+
+    layers, kv_heads, head_dim, vocab = lm.cache_shape()
+    context = max(len(p) for p in job.prompt_ids) + job.max_new_tokens
+    per_row = sizing.row_bytes(layers, kv_heads, head_dim, context, vocab,
+                               sizing.BYTES_PER_PARAMETER.get(lm.dtype, 4))
+    free = sizing.available_memory() if available is None else available
+    fits = sizing.rows_per_batch(per_row, free, wanted=10**6)
+    line = (f"batch: {job.chunk_rows} rows per forward pass (chunk_rows); memory allows {fits} "
+            f"({sizing.gb(per_row)} a row at {context} positions, half of {sizing.gb(free)} available)")
+    return fits, line
+
+
+def check_batch(spec: SweepSpec, lm: "LoadedModel", job: "SweepJob",
+                available: int | None = None) -> str:
+    """`batch_rows`' line; UserError naming chunk_rows when the spec asks for more rows than fit."""
+    fits, line = batch_rows(lm, job, available)
+    if job.chunk_rows > fits:
+        raise located(spec.path, "chunk_rows", f"{job.chunk_rows} rows per forward pass do not fit in "
+                                               f"memory with model {lm.name}; set chunk_rows = {fits} "
+                                               f"or less ({line.split('; ', 1)[1]})")
+    return line

@@ -147,13 +147,11 @@ def write_scatter_png(results: SweepResults, path: Path) -> None:
 
     Error bars are the 95% intervals of both measures.
     """
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
+    from matplotlib.figure import Figure  # no pyplot: no backend to force (tui.settings)
 
     rows = _finite(results.scope(None))
-    fig, ax = plt.subplots(figsize=(8, 5.5), dpi=120)
+    fig = Figure(figsize=(8, 5.5), dpi=120)
+    ax = fig.subplots()
     try:
         others = [r for r in rows if not r.on_front]
         front = results.front(None)
@@ -184,7 +182,7 @@ def write_scatter_png(results: SweepResults, path: Path) -> None:
         fig.tight_layout()
         fig.savefig(path)
     finally:
-        plt.close(fig)
+        fig.clear()  # a pyplot-free figure is freed with its last reference
 
 
 

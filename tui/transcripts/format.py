@@ -41,7 +41,8 @@ def header_of(view: "SessionView", info: "SessionInfo",
     sc = info.scenario
     return TranscriptHeader(
         title=sc.title, created=now_iso(), model_name=info.model_name,
-        model_source=info.model_source, dtype=info.dtype, prompt_text=sc.prompt,
+        model_source=info.model_source, dtype=info.dtype, dtype_note=info.dtype_note,
+        prompt_text=sc.prompt,
         messages=tuple(sc.messages) if sc.messages else None,
         prompt_ids=tuple(int(i) for i in prompt_ids), max_new_tokens=sc.max_new_tokens,
         stop=tuple(sc.stop), seed=view.seed, shared_draws=view.shared_draws,

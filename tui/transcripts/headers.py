@@ -81,6 +81,7 @@ class TranscriptHeader:
     versions: dict[str, str] = field(default_factory=dict)
     draw_log: tuple[tuple[int, bool], ...] = ()  # (from step, shared); () = never changed
     extra: dict[str, Any] = field(default_factory=dict)
+    dtype_note: str = ""  # why `--dtype auto` chose bfloat16; "" when it was asked or float32
 
     def pane(self, pane_id: int) -> PaneHeader:
         for p in self.panes:
@@ -94,7 +95,8 @@ class TranscriptHeader:
         return {
             "kind": "header", "format": fmt, "version": VERSION, "created": self.created,
             "title": self.title,
-            "model": {"name": self.model_name, "source": self.model_source, "dtype": self.dtype},
+            "model": {"name": self.model_name, "source": self.model_source, "dtype": self.dtype,
+                      **({"dtype_note": self.dtype_note} if self.dtype_note else {})},
             "prompt": {"text": self.prompt_text, "messages": messages,
                        "ids": list(self.prompt_ids)},
             "max_new_tokens": self.max_new_tokens, "stop": list(self.stop),

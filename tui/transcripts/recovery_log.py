@@ -42,20 +42,20 @@ from typing import TYPE_CHECKING, Any, Iterable
 from tui.session.record import StepRecord
 from tui.transcripts.format import dumps, header_of, step_line
 from tui.transcripts.headers import RECOVERY_FORMAT, PaneHeader
+from tui.settings import STATE_DIR_ENV, settings  # noqa: F401 - STATE_DIR_ENV: the variable's name, for callers
 
 if TYPE_CHECKING:
     from tui.session.opening import SessionInfo
     from tui.session.views import PaneView, SessionView
 
-STATE_DIR_ENV = "LOGITFORK_STATE_DIR"
 FLUSH_EVERY = 4
 
 
 def state_dir() -> Path:
     """The user state folder (or `$LOGITFORK_STATE_DIR`)."""
-    override = os.environ.get(STATE_DIR_ENV)
-    if override:
-        return Path(override)
+    override = settings().state_dir
+    if override is not None:
+        return override
     import platformdirs
 
     return Path(platformdirs.user_state_dir("logitfork"))

@@ -108,6 +108,7 @@ def parse_header(obj: dict[str, Any]) -> TranscriptHeader:
         model_name=_str(model, "name", "model.name"),
         model_source=_str(model, "source", "model.source"),
         dtype=_str(model, "dtype", "model.dtype"),
+        dtype_note=_str(model, "dtype_note", "model.dtype_note") if "dtype_note" in model else "",
         prompt_text=text, messages=messages, prompt_ids=tuple(ids),
         max_new_tokens=_int(obj, "max_new_tokens", low=1), stop=tuple(stop),
         seed=_int(obj, "seed", low=0), shared_draws=_bool(obj, "shared_draws"),

@@ -12,8 +12,9 @@ No Textual, and no torch until a model is loaded.
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import TYPE_CHECKING, Callable, Iterator, Protocol
+from typing import TYPE_CHECKING, Iterator, Protocol
 
+from tui.progress import ProgressCallback, ProgressEvent
 from tui.session.views import SessionView
 
 if TYPE_CHECKING:
@@ -25,7 +26,6 @@ if TYPE_CHECKING:
     from tui.session.scenario import Scenario
     from tui.transcripts.recovery_log import RecoveryLog
 
-Progress = Callable[[str, float | None], None]  # (stage text, fraction done or None)
 
 
 class SessionSource(Protocol):
@@ -61,6 +61,7 @@ class LiveSource:
     live_engine: Engine
     info: "SessionInfo"
     prompt_text: str
+    notes: tuple[str, ...] = ()  # told once when the app opens (which forward path, the dtype)
 
     @property
     def engine(self) -> Engine:
@@ -163,7 +164,7 @@ class SessionLoader:
     scenario: "Scenario"
     model: str | None = None  # overrides the scenario's model
     seed: int | None = None  # overrides the scenario's seed
-    dtype: str = "float32"
+    dtype: str = "auto"
     allow_pickle: bool = False
     max_new_tokens: int | None = None
 
@@ -173,13 +174,14 @@ class SessionLoader:
 
         return self.model or self.scenario.model or DEFAULT_MODEL
 
-    def load(self, progress: Progress) -> LiveSource:
+    def load(self, progress: ProgressCallback) -> LiveSource:
         from tui.model.catalogue import load_model
         from tui.session.opening import open_session
 
         lm = load_model(self.model_name, dtype=self.dtype, allow_pickle=self.allow_pickle,
                         progress=progress)
-        progress("reading the prompt", None)
+        progress(ProgressEvent("reading the prompt", 0))
         engine, info = open_session(lm, self.scenario, seed=self.seed,
                                     max_new_tokens=self.max_new_tokens)
-        return LiveSource(engine, info, lm.decode(list(engine.prompt_ids)))
+        notes = tuple(n for n in (lm.path_note, lm.dtype_note) if n)
+        return LiveSource(engine, info, lm.decode(list(engine.prompt_ids)), notes=notes)
