@@ -21,7 +21,7 @@ from safetensors.torch import load_file, save_file
 
 from tui.model import lean_llama
 from tui.model.lean_llama import LeanRunner, shape_of_model
-from tui.model.llama_checkpoint import config_refusal, read_checkpoint, read_config
+from tui.model.llama_checkpoint import config_refusal, read_checkpoint, read_config, shape_from_config
 
 try:
     from tiny_model import LAYERS_VOCAB, tiny_llama, tiny_qwen2
@@ -204,3 +204,48 @@ def test_reading_a_checkpoint_imports_no_transformers(tmp_path):
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, cwd=ROOT)
     assert out.returncode == 0, out.stderr
     assert out.stdout.strip() == "[]"
+
+
+# config.json as hub models ship it, in the layout before rope_parameters (recalled from
+# memory of Qwen2.5-0.5B-Instruct's and a Llama-3.2-style file; the numbers are theirs,
+# the point is the set of keys)
+QWEN25_STYLE = {
+    "architectures": ["Qwen2ForCausalLM"], "attention_dropout": 0.0, "bos_token_id": 151643,
+    "eos_token_id": 151645, "hidden_act": "silu", "hidden_size": 896, "initializer_range": 0.02,
+    "intermediate_size": 4864, "max_position_embeddings": 32768, "max_window_layers": 21,
+    "model_type": "qwen2", "num_attention_heads": 14, "num_hidden_layers": 24,
+    "num_key_value_heads": 2, "rms_norm_eps": 1e-06, "rope_theta": 1000000.0,
+    "sliding_window": 32768, "tie_word_embeddings": True, "torch_dtype": "bfloat16",
+    "transformers_version": "4.43.1", "use_cache": True, "use_sliding_window": False,
+    "vocab_size": 151936, "rope_scaling": None,
+}
+LLAMA32_STYLE = {
+    "architectures": ["LlamaForCausalLM"], "attention_bias": False, "attention_dropout": 0.0,
+    "bos_token_id": 128000, "eos_token_id": 128001, "head_dim": 64, "hidden_act": "silu",
+    "hidden_size": 2048, "initializer_range": 0.02, "intermediate_size": 8192,
+    "max_position_embeddings": 131072, "mlp_bias": False, "model_type": "llama",
+    "num_attention_heads": 32, "num_hidden_layers": 16, "num_key_value_heads": 8,
+    "pretraining_tp": 1, "rms_norm_eps": 1e-05, "rope_theta": 500000.0,
+    "rope_scaling": {"factor": 32.0, "high_freq_factor": 4.0, "low_freq_factor": 1.0,
+                     "original_max_position_embeddings": 8192, "rope_type": "llama3"},
+    "tie_word_embeddings": True, "torch_dtype": "bfloat16", "transformers_version": "4.45.0",
+    "use_cache": True, "vocab_size": 128256,
+}
+
+
+def test_a_hub_style_qwen2_config_is_read_directly():
+    assert config_refusal(QWEN25_STYLE) is None
+    assert shape_from_config(QWEN25_STYLE).head_dim == 64  # 896 / 14
+    # and transformers' own reading of it (rope_parameters layout) passes the lean check
+    from transformers import Qwen2Config
+
+    assert config_refusal(Qwen2Config(**QWEN25_STYLE).to_dict(), ("default", "linear", "llama3")) is None
+
+
+def test_a_llama3_rope_is_not_read_directly_but_runs_lean_on_transformers_frequencies():
+    assert "rope_scaling" in (config_refusal(LLAMA32_STYLE) or "")
+    from transformers import LlamaConfig
+
+    converted = LlamaConfig(**LLAMA32_STYLE).to_dict()
+    assert config_refusal(converted) is not None  # the direct reader computes only the default rope
+    assert config_refusal(converted, ("default", "linear", "llama3")) is None
