@@ -19,7 +19,7 @@ import sys
 
 import numpy as np
 
-from tui.sweeps.metrics import DistinctN, SelfBleu, SampleRecord, measure_samples
+from tui.sweeps.metrics import DistinctN, SampleRecord, SelfBleu, measure_samples
 
 VOCAB, LENGTH, SAMPLES = 200, 32, 8
 TRUTH_SETS = 2000

@@ -15,8 +15,8 @@ from tui.errors import UserError
 from tui.model import lean_llama
 from tui.model.forward import FORWARD_ENV, Runner, make_runner
 from tui.model.kv import KV
-from tui.settings import settings
 from tui.model.lean_llama import LeanRunner, lean_refusal
+from tui.settings import settings
 
 try:
     from tiny_model import LAYERS_VOCAB as VOCAB

@@ -26,8 +26,6 @@ import torch
 from tui.errors import UserError
 from tui.model import conversion_cache as model_cache
 from tui.model import sources as model_sources
-from tui.progress import ProgressEvent
-from tui.settings import LOADER_ENV, settings
 from tui.model.catalogue import (
     DEFAULT_MODEL,
     CatalogueEntry,
@@ -36,6 +34,8 @@ from tui.model.catalogue import (
     read_catalogue,
     resolve,
 )
+from tui.progress import ProgressEvent
+from tui.settings import LOADER_ENV, settings
 
 try:
     from tiny_model import EOS_TOKEN, build_tiny_gguf
@@ -469,14 +469,14 @@ def test_the_generic_path_and_bfloat16_are_honoured_on_warm_starts(tiny_gguf, mo
 
 
 def test_a_first_conversion_on_a_terminal_draws_its_bar_to_the_end(tiny_gguf):
-    from tui.commands.model_progress import ModelProgress
+    from tui.commands.progress_display import ProgressDisplay
 
     class Terminal(io.StringIO):
         def isatty(self) -> bool:
             return True
 
     stream = Terminal()
-    with ModelProgress(stream) as progress:
+    with ProgressDisplay(stream, units={"bytes"}, log_every=None) as progress:
         load_model(str(tiny_gguf), progress=progress)
     text = stream.getvalue()
     assert "converting tiny.gguf (once)" in text and "100%" in text  # rich.progress's own percent
@@ -485,10 +485,10 @@ def test_a_first_conversion_on_a_terminal_draws_its_bar_to_the_end(tiny_gguf):
 
 
 def test_a_warm_start_draws_nothing_and_a_pipe_never_gets_a_bar(tiny_gguf):
-    from tui.commands.model_progress import ModelProgress
+    from tui.commands.progress_display import ProgressDisplay
 
     pipe = io.StringIO()  # not a terminal
-    with ModelProgress(pipe) as progress:
+    with ProgressDisplay(pipe, units={"bytes"}, log_every=None) as progress:
         load_model(str(tiny_gguf), progress=progress)  # converts: a bytes task
     assert pipe.getvalue() == ""
 

@@ -23,9 +23,10 @@ import torch
 
 from tui.cli import main as cli
 from tui.model.forward import make_runner
+from tui.progress import format_duration
 from tui.session.record import STOP_EOS, STOP_LENGTH, STOP_REASONS, STOP_STRING
 from tui.sweeps.folder import SweepFolder
-from tui.sweeps.progress import SweepProgress, format_duration
+from tui.sweeps.progress import SweepProgress
 from tui.sweeps.runner import SweepJob, SweepRunner, row_uniforms
 
 try:

@@ -23,15 +23,19 @@ class ProgressEvent:
     unit: str = ""  # "bytes", "chunks", "tokens", "steps", or "" for a plain fraction
     note: str = ""  # a short extra, such as a token rate
 
+    def amount(self) -> str:
+        """"1.20/4.50 GB", "12/40 steps", "" for a plain fraction."""
+        if self.unit == "bytes":
+            return (f"{self.done / 1e9:.2f}/{self.total / 1e9:.2f} GB" if self.total
+                    else f"{self.done / 1e9:.2f} GB")
+        if not self.unit:
+            return ""
+        total = f"/{self.total:g}" if self.total else ""
+        return f"{self.done:g}{total} {self.unit}"
+
     def text(self) -> str:
         """One line for a status display: "converting x.gguf  1.20/4.50 GB  about 40 s left"."""
-        parts = [self.task]
-        if self.unit == "bytes":
-            parts.append(f"{self.done / 1e9:.2f}/{self.total / 1e9:.2f} GB" if self.total
-                         else f"{self.done / 1e9:.2f} GB")
-        if self.note:
-            parts.append(self.note)
-        return "  ".join(parts)
+        return "  ".join(part for part in (self.task, self.amount(), self.note) if part)
 
     @property
     def fraction(self) -> float | None:
@@ -57,3 +61,15 @@ def time_left(done: float, total: float | None, started: float, now: float | Non
     if seconds >= 90:
         return f"about {seconds / 60:.0f} min left"
     return f"about {max(1, round(seconds))} s left"
+
+
+def format_duration(seconds: float) -> str:
+    """``45s``, ``3m05s``, ``2h07m``; ``?`` when unknown."""
+    if seconds != seconds or seconds < 0 or seconds == float("inf"):
+        return "?"
+    s = int(round(seconds))
+    if s < 60:
+        return f"{s}s"
+    if s < 3600:
+        return f"{s // 60}m{s % 60:02d}s"
+    return f"{s // 3600}h{s % 3600 // 60:02d}m"

@@ -150,9 +150,9 @@ def measure_one(folder: Path, dtype: str, steps: int) -> dict[str, Any]:
 
 def own_model_rows(quick: bool, keep: bool = True) -> list[Row]:
     """Build the folders, run every (shape, dtype) in a fresh process, make the rows."""
+    from tui.model.catalogue import DEFAULT_MODEL
     from tui.model.conversion_cache import cache_root
     from tui.model.sources import resolve
-    from tui.model.catalogue import DEFAULT_MODEL
 
     tokenizer_folder = resolve(DEFAULT_MODEL).folder
     if not (tokenizer_folder / "tokenizer.json").is_file():  # a first run: convert the embedded model

@@ -7,7 +7,6 @@ tokens, both top-5 lists, and the package versions then and now).
 from __future__ import annotations
 
 import argparse
-import sys
 
 EXIT_DIFFERENT = 3
 
@@ -21,21 +20,18 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def main(args: argparse.Namespace) -> int:
+    from tui.commands.model_loading import load_for_command
     from tui.transcripts.reader import StoredSession
 
     session = StoredSession.open(args.transcript)  # check the whole file before loading
     head = session.header
 
-    from tui.model.catalogue import DTYPES, load_model
+    from tui.model.catalogue import DTYPES
     from tui.transcripts.rerun import describe, rerun
 
     name = args.model or head.model_name
     dtype = head.dtype if head.dtype in DTYPES else "float32"
-    from tui.commands.model_progress import ModelProgress, model_line
-
-    with ModelProgress() as progress:
-        lm = load_model(name, dtype=dtype, allow_pickle=args.allow_pickle, progress=progress)
-    print(model_line(lm), file=sys.stderr)
+    lm = load_for_command(name, dtype=dtype, allow_pickle=args.allow_pickle)
     result = rerun(session, lm)
     for line in describe(result, args.transcript, name):
         print(line)

@@ -25,6 +25,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def main(args: argparse.Namespace) -> int:
+    from tui.commands.model_loading import load_for_command
     from tui.errors import UserError
     from tui.session.scenario import find_scenario, load_scenario
 
@@ -35,22 +36,18 @@ def main(args: argparse.Namespace) -> int:
         raise UserError(f"--seed: must be >= 0, got {args.seed}")
 
     from tui.commands.progress_display import ProgressDisplay
-    from tui.model.catalogue import DEFAULT_MODEL, load_model
+    from tui.files import write_atomic
+    from tui.model.catalogue import DEFAULT_MODEL
     from tui.progress import ProgressEvent
     from tui.session.opening import open_session
-    from tui.files import write_atomic
     from tui.transcripts import format as transcript
     model_name = args.model or scenario.model or DEFAULT_MODEL
-    from tui.commands.model_progress import ModelProgress, model_line
-
-    with ModelProgress() as progress:
-        lm = load_model(model_name, dtype=args.dtype, allow_pickle=args.allow_pickle, progress=progress)
-    print(model_line(lm), file=sys.stderr)
+    lm = load_for_command(model_name, dtype=args.dtype, allow_pickle=args.allow_pickle)
     engine, info = open_session(lm, scenario, seed=args.seed)
     steps = min(args.steps or scenario.max_new_tokens, scenario.max_new_tokens)
     times: list[float] = []
     tokens = 0
-    with ProgressDisplay(log_every=float("inf")) as display:  # a bar on a terminal only
+    with ProgressDisplay(log_every=None) as display:  # a bar on a terminal only
         for i in range(steps):
             start = time.perf_counter()
             out = engine.step()
@@ -58,9 +55,7 @@ def main(args: argparse.Namespace) -> int:
                 break
             times.append(time.perf_counter() - start)
             tokens += len(out)
-            if display.interactive:
-                display.update(ProgressEvent("run", i + 1, steps, "steps",
-                                             f"{len(out)} panes live"))
+            display(ProgressEvent("run", i + 1, steps, "steps", f"{len(out)} panes live"))
 
     view = engine.view()
     if args.out:

@@ -30,6 +30,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 def main(args: argparse.Namespace) -> int:
     from pathlib import Path
 
+    from tui.commands.model_loading import load_for_command
     from tui.errors import UserError
     from tui.sweeps.folder import SweepFolder, package_versions, shard_text
     from tui.sweeps.plan import (
@@ -51,15 +52,10 @@ def main(args: argparse.Namespace) -> int:
     out = Path(args.out) if args.out else default_folder(spec, shard)
     SweepFolder.check_existing(out, manifest)  # refuse a wrong folder before loading anything
 
-    from tui.model.catalogue import load_model
     from tui.sweeps.progress import SweepProgress
     from tui.sweeps.runner import SweepRunner
 
-    from tui.commands.model_progress import ModelProgress, model_line
-
-    with ModelProgress() as progress:
-        lm = load_model(spec.model, allow_pickle=args.allow_pickle, progress=progress)
-    print(model_line(lm), file=sys.stderr)
+    lm = load_for_command(spec.model, allow_pickle=args.allow_pickle)
     job = build_job(spec, prompts, lm)
     print(check_batch(spec, lm, job), file=sys.stderr)  # rows per forward pass against free memory
     runner = lm.runner()

@@ -96,7 +96,9 @@ def gather(session: StoredSession) -> Report:
 
 def plots_png(report: Report, dpi: int = 96) -> bytes:
     """Entropy, kept-set size and chosen-token probability over the steps, as a PNG."""
-    from matplotlib.figure import Figure  # renders with Agg by itself: no backend forced (tui.settings)
+    from matplotlib.figure import (
+        Figure,  # renders with Agg by itself: no backend forced (tui.settings)
+    )
 
     fig = Figure(figsize=(10, 7.5), dpi=dpi, layout="constrained")
     axes = fig.subplots(3, 1, sharex=True)

@@ -14,19 +14,9 @@ import sys
 import time
 from typing import Callable, TextIO
 
+from tui.progress import format_duration
+
 Clock = Callable[[], float]
-
-
-def format_duration(seconds: float) -> str:
-    """``45s``, ``3m05s``, ``2h07m``; ``?`` when unknown."""
-    if seconds != seconds or seconds < 0 or seconds == float("inf"):
-        return "?"
-    s = int(round(seconds))
-    if s < 60:
-        return f"{s}s"
-    if s < 3600:
-        return f"{s // 60}m{s % 60:02d}s"
-    return f"{s // 3600}h{s % 3600 // 60:02d}m"
 
 
 class SweepProgress:

@@ -147,7 +147,9 @@ def write_scatter_png(results: SweepResults, path: Path) -> None:
 
     Error bars are the 95% intervals of both measures.
     """
-    from matplotlib.figure import Figure  # no pyplot: no backend to force (tui.settings)
+    from matplotlib.figure import (
+        Figure,  # no pyplot: no backend to force (tui.settings)
+    )
 
     rows = _finite(results.scope(None))
     fig = Figure(figsize=(8, 5.5), dpi=120)

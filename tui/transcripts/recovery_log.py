@@ -40,9 +40,9 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any, Iterable
 
 from tui.session.record import StepRecord
+from tui.settings import STATE_DIR_ENV, settings  # noqa: F401 - STATE_DIR_ENV: the variable's name, for callers
 from tui.transcripts.format import dumps, header_of, step_line
 from tui.transcripts.headers import RECOVERY_FORMAT, PaneHeader
-from tui.settings import STATE_DIR_ENV, settings  # noqa: F401 - STATE_DIR_ENV: the variable's name, for callers
 
 if TYPE_CHECKING:
     from tui.session.opening import SessionInfo
