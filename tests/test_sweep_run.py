@@ -170,7 +170,7 @@ def test_endings_follow_their_rules(lm):
 
 def test_samples_do_not_depend_on_the_chunking(lm):
     prompts = tuple(tuple(lm.encode_prompt(p, None)) for p in PROMPTS)
-    recipes = ("temperature=0.9 top_p=0.9", "mirostat(tau=3,eta=0.1)")
+    recipes = ("temperature=0.9 top_p=0.9", "mirostat(tau=3,learning_rate=0.1)")
     runs = []
     for rows in (1, 3):  # 3 rows: chunks that split a recipe's samples
         job = SweepJob(prompts, recipes, samples=2, max_new_tokens=6, seed=11, chunk_rows=rows)

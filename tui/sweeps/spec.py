@@ -20,7 +20,7 @@ Grid order: each expanded recipe applies its stages in the order the keys are wr
 in the [grid] table, and combinations are listed with the first key changing slowest
 (like `itertools.product`). A value is a number (``top_p = [0.9]`` gives "top_p=0.9"),
 a string put after ``=`` as written (or right after the name when it opens with "(":
-``mirostat = ["(tau=3,eta=0.2)"]``), ``true`` for the bare stage name (``greedy``) or
+``mirostat = ["(tau=3,learning_rate=0.2)"]``), ``true`` for the bare stage name (``greedy``) or
 ``false`` to leave the stage out of that combination (a combination that leaves every
 stage out is the empty recipe: the model's own distribution). Explicit recipes come
 first, then the grid; duplicates (equal canonical text) keep their first place.
