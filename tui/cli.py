@@ -3,18 +3,34 @@
 Each command lives in `tui/commands/<name>.py` with two functions,
 ``add_arguments(parser)`` and ``main(args) -> int``. Those modules import nothing
 heavy at module level, so `logitfork recipe check` answers without loading torch.
-Every `UserError` (and `RecipeError`) becomes one `error: ...` line on stderr.
+
+What reaches the user:
+- a `UserError` (or `RecipeError`): one `error: ...` line on stderr, exit 2;
+- any other exception (a bug): one `error:` line saying which command failed and
+  where the full report (the traceback) was written, exit 1; `--debug` prints the
+  traceback instead;
+- standard output closed early (`logitfork report X --out - | head -3`): a quiet
+  exit, as the Python docs' "Note on SIGPIPE" (module `signal`) recommends.
 """
 
 from __future__ import annotations
 
 import argparse
 import importlib
+import os
+import platform
+import shlex
 import sys
+import traceback
+from datetime import datetime, timezone
+from pathlib import Path
 from typing import Sequence
 
 from tui import __version__
-from tui.errors import UserError
+from tui.errors import UserError, first_line
+from tui.files import write_atomic
+
+STATE_DIR_ENV = "LOGITFORK_STATE_DIR"  # the same variable tui.transcripts.recovery_log reads
 
 # command name -> (module under tui.commands, one-line help)
 COMMANDS: dict[str, tuple[str, str]] = {
@@ -41,13 +57,79 @@ def build_parser() -> argparse.ArgumentParser:
         "or offensive. Check any setting chosen here on your own data before use.",
     )
     parser.add_argument("--version", action="version", version=f"logitfork {__version__}")
+    parser.add_argument("--debug", action="store_true",
+                        help="on an unexpected failure, print the full traceback")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND")
     for name, (module, help_text) in COMMANDS.items():
         p = sub.add_parser(name, help=help_text, description=help_text)
         mod = importlib.import_module(f"tui.commands.{module}")
         mod.add_arguments(p)
+        # also after the command name; SUPPRESS leaves the top-level value when absent
+        p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
+                       help="on an unexpected failure, print the full traceback")
         p.set_defaults(_module=mod)
     return parser
+
+
+def state_folder() -> Path:
+    """The user state folder ($LOGITFORK_STATE_DIR, else platformdirs' user state dir).
+
+    The rule of `tui.transcripts.recovery_log.state_dir`, kept here in one function
+    because the command line may not import the transcripts room.
+    """
+    override = os.environ.get(STATE_DIR_ENV)
+    if override:
+        return Path(override)
+    import platformdirs
+
+    return Path(platformdirs.user_state_dir("logitfork"))
+
+
+def write_crash_report(argv: Sequence[str], exc: BaseException) -> Path:
+    """Write what is needed to reproduce an unexpected failure; return the file's path.
+
+    Holds the command line, the versions and the traceback; nothing else is read.
+    Raises OSError when the state folder cannot be written.
+    """
+    stamp = datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%S%fZ")
+    path = state_folder() / "crash-reports" / f"crash-{stamp}-{os.getpid()}.txt"
+    path.parent.mkdir(parents=True, exist_ok=True)
+    lines = [
+        f"logitfork {__version__} on Python {platform.python_version()} ({platform.platform()})",
+        f"command: logitfork {shlex.join(argv)}",
+        f"when: {stamp}",
+        "",
+        *"".join(traceback.format_exception(exc)).rstrip("\n").splitlines(),
+    ]
+    return write_atomic(path, lines)
+
+
+def _unexpected(argv: Sequence[str], exc: Exception, debug: bool) -> int:
+    """The last line of defence: one `error:` line and a crash report (exit status 1)."""
+    command = shlex.join(argv)
+    doing = f"`logitfork {command if len(command) <= 120 else command[:117] + '...'}`"
+    what = f"{type(exc).__name__}: {first_line(exc)}"
+    if debug:
+        traceback.print_exception(exc, file=sys.stderr)
+        print(f"error: {doing} failed unexpectedly ({what})", file=sys.stderr)
+        return 1
+    try:
+        where = f"the full report is in {write_crash_report(argv, exc)}"
+    except OSError as write_exc:
+        where = f"no report could be written ({write_exc.strerror or write_exc})"
+    print(f"error: {doing} failed unexpectedly ({what}); {where}; "
+          "run it again with --debug to see the traceback", file=sys.stderr)
+    return 1
+
+
+def _stdout_closed() -> int:
+    """Standard output's reader went away: stop quietly (Python docs, "Note on SIGPIPE")."""
+    try:  # later flushes, at exit included, go nowhere instead of raising again
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+    except (OSError, ValueError, AttributeError):  # stdout is not a real file (tests)
+        pass
+    return 1
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -57,7 +139,11 @@ def main(argv: Sequence[str] | None = None) -> int:
     parser = build_parser()
     args = parser.parse_args(argv)
     try:
-        return int(args._module.main(args) or 0)
+        status = int(args._module.main(args) or 0)
+        sys.stdout.flush()  # a closed pipe shows here, inside the try, not at exit
+        return status
+    except BrokenPipeError:
+        return _stdout_closed()
     except UserError as exc:
         print(f"error: {exc}", file=sys.stderr)
         return exc.exit_code
@@ -65,10 +151,12 @@ def main(argv: Sequence[str] | None = None) -> int:
         if type(exc).__name__ == "RecipeError":
             print(f"error: {exc}", file=sys.stderr)
             return 2
-        raise
+        return _unexpected(argv, exc, args.debug)
     except KeyboardInterrupt:
         print("interrupted", file=sys.stderr)
         return 130
+    except Exception as exc:  # noqa: BLE001 - the last line of defence, see the module doc
+        return _unexpected(argv, exc, args.debug)
 
 
 if __name__ == "__main__":

@@ -24,6 +24,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 def main(args: argparse.Namespace) -> int:
     from tui.errors import UserError
+    from tui.files import write_atomic
     from tui.session.scenario import find_scenario, load_scenario
 
     scenario = load_scenario(find_scenario(args.scenario))  # check the file before loading
@@ -61,7 +62,7 @@ def main(args: argparse.Namespace) -> int:
             transcript.write_stream(sys.stdout, text_lines)
         else:
             try:
-                transcript.write_atomic(args.out, text_lines)
+                write_atomic(args.out, text_lines)
             except OSError as exc:
                 raise UserError(f"{args.out}: cannot write the transcript: "
                                 f"{exc.strerror or exc}") from None
