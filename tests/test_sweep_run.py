@@ -197,7 +197,7 @@ def test_a_bad_sweep_file_is_one_line_and_exit_2(tmp_path, tiny_model_dir, capsy
     bad = write_sweep(tmp_path / "bad.toml", tiny_model_dir, samples=0)
     assert cli(["sweep", str(bad)]) == 2
     err = capsys.readouterr().err
-    assert err == f"error: {bad}: samples: must be an integer >= 1, got 0\n"
+    assert err == f"error: {bad}: samples: must be an integer in [1, 100000], got 0\n"
     grid = tmp_path / "grid.toml"
     grid.write_text(bad.read_text().replace("samples = 0", "samples = 2")
                     + "[grid]\ntop_p = [0.9, 1.5]\n")

@@ -117,11 +117,14 @@ def test_every_bad_field_names_file_field_and_reason(body, field, reason):
 
 BAD_TOP = [
     ('prompts = ["a"]\nsamples = 0\nmax_new_tokens = 8\nrecipes = ["greedy"]\n',
-     "samples", "must be an integer >= 1, got 0"),
+     "samples", "must be an integer in [1, 100000], got 0"),
     ('prompts = ["a"]\nsamples = true\nmax_new_tokens = 8\nrecipes = ["greedy"]\n',
-     "samples", "must be an integer >= 1, got True"),
+     "samples", "must be an integer in [1, 100000], got True"),
+    ('prompts = ["a"]\nsamples = 1_000_000_000_000_000_000_000_000_000_000\nmax_new_tokens = 8\n'
+     'recipes = ["greedy"]\n',
+     "samples", "must be an integer in [1, 100000], got 1000000000000000000000000000000"),
     ('prompts = ["a"]\nmax_new_tokens = 8\nrecipes = ["greedy"]\n',
-     "samples", "missing (samples per prompt and recipe, >= 1)"),
+     "samples", "missing (samples per prompt and recipe, 1..100000)"),
     ('prompts = ["a"]\nsamples = 1\nmax_new_tokens = 4097\nrecipes = ["greedy"]\n',
      "max_new_tokens", "must be an integer in [1, 4096], got 4097"),
     ('prompts = ["a"]\nsamples = 1\nrecipes = ["greedy"]\n', "max_new_tokens", "missing (1..4096)"),

@@ -54,7 +54,10 @@ def main(args: argparse.Namespace) -> int:
     from tui.sweeps.progress import SweepProgress
     from tui.sweeps.runner import SweepRunner
 
-    lm = load_model(spec.model, allow_pickle=args.allow_pickle)
+    try:
+        lm = load_model(spec.model, allow_pickle=args.allow_pickle)
+    except UserError as exc:  # the model the sweep file names: say which file and field
+        raise UserError(f"{spec.path}: model: {exc}", exc.exit_code) from None
     job = build_job(spec, prompts, lm)
     runner = lm.runner()
     versions = {**package_versions(), "model": {"name": lm.name, "source": lm.source,

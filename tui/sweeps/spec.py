@@ -7,7 +7,7 @@ A sweep is a TOML file of our own format (documented in the README):
     prompts = ["text", [{ role = "user", content = "..." }]]   # either prompts ...
     scenario = "harbour-town.toml"    # ... or a scenario file whose prompt is used
     recipes = ["greedy", "top_p=0.9"] # explicit recipe texts, and/or a [grid]
-    samples = 8                       # per prompt and recipe, >= 1
+    samples = 8                       # per prompt and recipe, 1..100000
     max_new_tokens = 60               # 1..4096
     seed = 11                         # optional, default 0
     chunk_rows = 32                   # optional, rows per forward pass, 1..256
@@ -50,6 +50,7 @@ MAX_NEW_TOKENS = 4096
 DEFAULT_CHUNK_ROWS = 32  # rows per forward pass unless the file says otherwise
 MAX_CHUNK_ROWS = 256
 MAX_RECIPES = 256
+MAX_SAMPLES = 100_000  # per prompt and recipe: far past any useful sweep, short of a hang
 FINGERPRINT_FORMAT = "logitfork-sweep/1"
 _KEYS = ("title", "model", "prompts", "scenario", "recipes", "grid", "samples",
          "max_new_tokens", "seed", "chunk_rows", "stop")
@@ -174,7 +175,7 @@ def parse_sweep_text(text: str, path: str | Path = "<sweep>") -> SweepSpec:
 
     explicit, grid, recipe_texts = _recipes(data, path)
     if "samples" not in data:
-        raise located(path, "samples", "missing (samples per prompt and recipe, >= 1)")
+        raise located(path, "samples", f"missing (samples per prompt and recipe, 1..{MAX_SAMPLES})")
     if "max_new_tokens" not in data:
         raise located(path, "max_new_tokens", f"missing (1..{MAX_NEW_TOKENS})")
     stop = data.get("stop", [])
@@ -185,7 +186,7 @@ def parse_sweep_text(text: str, path: str | Path = "<sweep>") -> SweepSpec:
         model=_string(data["model"], path, "model") if "model" in data else DEFAULT_MODEL,
         prompts=prompts, scenario=scenario, explicit_recipes=explicit, grid=grid,
         recipe_texts=recipe_texts,
-        samples=_integer(data, "samples", path, 1, None, None),
+        samples=_integer(data, "samples", path, 1, MAX_SAMPLES, None),
         max_new_tokens=_integer(data, "max_new_tokens", path, 1, MAX_NEW_TOKENS, None),
         seed=_integer(data, "seed", path, 0, 2**63 - 1, 0),
         chunk_rows=_integer(data, "chunk_rows", path, 1, MAX_CHUNK_ROWS, DEFAULT_CHUNK_ROWS),
