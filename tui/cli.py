@@ -18,19 +18,13 @@ from __future__ import annotations
 import argparse
 import importlib
 import os
-import platform
 import shlex
 import sys
 import traceback
-from datetime import datetime, timezone
-from pathlib import Path
 from typing import Sequence
 
 from tui import __version__
-from tui.errors import UserError, first_line
-from tui.files import write_atomic
-
-STATE_DIR_ENV = "LOGITFORK_STATE_DIR"  # the same variable tui.transcripts.recovery_log reads
+from tui.errors import UserError, crash_note, first_line
 
 # command name -> (module under tui.commands, one-line help)
 COMMANDS: dict[str, tuple[str, str]] = {
@@ -64,61 +58,35 @@ def build_parser() -> argparse.ArgumentParser:
         p = sub.add_parser(name, help=help_text, description=help_text)
         mod = importlib.import_module(f"tui.commands.{module}")
         mod.add_arguments(p)
-        # also after the command name; SUPPRESS leaves the top-level value when absent
-        p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
-                       help="on an unexpected failure, print the full traceback")
+        _add_debug(p)
         p.set_defaults(_module=mod)
     return parser
 
 
-def state_folder() -> Path:
-    """The user state folder ($LOGITFORK_STATE_DIR, else platformdirs' user state dir).
+def _add_debug(parser: argparse.ArgumentParser) -> None:
+    """`--debug` after the command name too (and after a sub-command's, as `recipe check`).
 
-    The rule of `tui.transcripts.recovery_log.state_dir`, kept here in one function
-    because the command line may not import the transcripts room.
+    SUPPRESS keeps the top-level value when the option is not repeated further on.
     """
-    override = os.environ.get(STATE_DIR_ENV)
-    if override:
-        return Path(override)
-    import platformdirs
-
-    return Path(platformdirs.user_state_dir("logitfork"))
-
-
-def write_crash_report(argv: Sequence[str], exc: BaseException) -> Path:
-    """Write what is needed to reproduce an unexpected failure; return the file's path.
-
-    Holds the command line, the versions and the traceback; nothing else is read.
-    Raises OSError when the state folder cannot be written.
-    """
-    stamp = datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%S%fZ")
-    path = state_folder() / "crash-reports" / f"crash-{stamp}-{os.getpid()}.txt"
-    path.parent.mkdir(parents=True, exist_ok=True)
-    lines = [
-        f"logitfork {__version__} on Python {platform.python_version()} ({platform.platform()})",
-        f"command: logitfork {shlex.join(argv)}",
-        f"when: {stamp}",
-        "",
-        *"".join(traceback.format_exception(exc)).rstrip("\n").splitlines(),
-    ]
-    return write_atomic(path, lines)
+    parser.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
+                        help="on an unexpected failure, print the full traceback")
+    for action in parser._actions:  # argparse keeps nested sub-parsers only here
+        if isinstance(action, argparse._SubParsersAction):
+            for nested in action.choices.values():
+                _add_debug(nested)
 
 
 def _unexpected(argv: Sequence[str], exc: Exception, debug: bool) -> int:
     """The last line of defence: one `error:` line and a crash report (exit status 1)."""
     command = shlex.join(argv)
     doing = f"`logitfork {command if len(command) <= 120 else command[:117] + '...'}`"
-    what = f"{type(exc).__name__}: {first_line(exc)}"
     if debug:
         traceback.print_exception(exc, file=sys.stderr)
-        print(f"error: {doing} failed unexpectedly ({what})", file=sys.stderr)
+        print(f"error: {doing} failed: unexpected {type(exc).__name__}: {first_line(exc)}",
+              file=sys.stderr)
         return 1
-    try:
-        where = f"the full report is in {write_crash_report(argv, exc)}"
-    except OSError as write_exc:
-        where = f"no report could be written ({write_exc.strerror or write_exc})"
-    print(f"error: {doing} failed unexpectedly ({what}); {where}; "
-          "run it again with --debug to see the traceback", file=sys.stderr)
+    print(f"error: {doing} failed: {crash_note(doing, exc)}; run it again with --debug to see "
+          "the traceback", file=sys.stderr)
     return 1
 
 
@@ -134,8 +102,10 @@ def _stdout_closed() -> int:
 
 def main(argv: Sequence[str] | None = None) -> int:
     argv = list(sys.argv[1:] if argv is None else argv)
-    if not argv or (argv[0] not in COMMANDS and argv[0] not in ("-h", "--help", "--version")):
-        argv.insert(0, "watch")  # `logitfork [SCENARIO]` opens the app
+    first = 1 if argv[:1] == ["--debug"] else 0
+    rest = argv[first:]
+    if not rest or (rest[0] not in COMMANDS and rest[0] not in ("-h", "--help", "--version")):
+        argv.insert(first, "watch")  # `logitfork [SCENARIO]` opens the app
     parser = build_parser()
     args = parser.parse_args(argv)
     try:

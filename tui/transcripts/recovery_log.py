@@ -39,6 +39,8 @@ from datetime import datetime, timezone
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Iterable
 
+from tui.errors import STATE_DIR_ENV as STATE_DIR_ENV  # re-exported: tests set it
+from tui.errors import state_folder
 from tui.session.record import StepRecord
 from tui.transcripts.format import dumps, header_of, step_line
 from tui.transcripts.headers import RECOVERY_FORMAT, PaneHeader
@@ -47,18 +49,12 @@ if TYPE_CHECKING:
     from tui.session.opening import SessionInfo
     from tui.session.views import PaneView, SessionView
 
-STATE_DIR_ENV = "LOGITFORK_STATE_DIR"
 FLUSH_EVERY = 4
 
 
 def state_dir() -> Path:
-    """The user state folder (or `$LOGITFORK_STATE_DIR`)."""
-    override = os.environ.get(STATE_DIR_ENV)
-    if override:
-        return Path(override)
-    import platformdirs
-
-    return Path(platformdirs.user_state_dir("logitfork"))
+    """The user state folder (or `$LOGITFORK_STATE_DIR`): `tui.errors.state_folder`."""
+    return state_folder()
 
 
 def recovery_dir() -> Path:
