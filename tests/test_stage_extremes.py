@@ -236,3 +236,32 @@ def test_the_sweep_runner_decodes_any_accepted_recipes(lm, texts: list[str], see
     for s in samples:
         assert len(s.token_ids) == 3 and all(k >= 1 for k in s.kept)
         assert all(math.isfinite(h) and h >= 0.0 for h in s.final_entropy)
+
+
+def test_the_issue_setting_runs_in_logitfork_run_and_sweep(tmp_path, tiny_model_dir, monkeypatch) -> None:
+    # the report: `mirostat(tau=5,eta=1000)` passed `recipe check`, then ended `run` and
+    # `sweep` with an OverflowError; renamed, the same setting must run both to the end
+    import contextlib
+    import io
+
+    from tui.cli import main as cli
+
+    monkeypatch.setenv("LOGITFORK_STATE_DIR", str(tmp_path / "state"))
+    recipe = "mirostat(tau=5,learning_rate=1000)"
+    scenario = tmp_path / "s.toml"
+    scenario.write_text(f'title = "t"\nprompt = "The lighthouse keeper"\nmax_new_tokens = 16\n'
+                        f'[[pane]]\nname = "m"\nrecipe = "{recipe}"\n', encoding="utf-8")
+    sweep = tmp_path / "w.toml"
+    sweep.write_text(f'model = "{tiny_model_dir}"\nprompts = ["Tea at the Copper Kettle:"]\n'
+                     f'recipes = ["{recipe}"]\nsamples = 2\nmax_new_tokens = 12\n', encoding="utf-8")
+    for argv in (["run", str(scenario), "--model", str(tiny_model_dir), "--out", str(tmp_path / "t.jsonl")],
+                 ["sweep", str(sweep), "--out", str(tmp_path / "out"), "--resamples", "20"]):
+        err = io.StringIO()
+        with contextlib.redirect_stdout(io.StringIO()), contextlib.redirect_stderr(err):
+            assert cli(argv) == 0, err.getvalue()
+    assert (tmp_path / "t.jsonl").exists() and (tmp_path / "out" / "results.csv").exists()
+    assert not (tmp_path / "state").exists()  # no crash report
+    err = io.StringIO()
+    with contextlib.redirect_stderr(err):  # and the old spelling gets a clear refusal
+        assert cli(["recipe", "check", "mirostat(tau=5,eta=1000)"]) == 2
+    assert "mirostat parameter eta is now called learning_rate" in err.getvalue()
