@@ -92,7 +92,7 @@ def test_user_errors_stay_exit_2_without_a_report(state) -> None:
 def test_the_app_names_a_crash_report_for_a_step_that_fails_unexpectedly(state) -> None:
     # the stepper's one line for a failed step (the app shows it and stays paused; the
     # pausing itself is tested in test_app_stepper.py and test_app_controls.py)
-    from tui.session.engine import EngineError
+    from tui.session.views import EngineError
     from tui.workbench.stepper import describe
 
     try:

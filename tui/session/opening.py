@@ -11,7 +11,8 @@ from typing import TYPE_CHECKING
 
 from tui.decoding.allocator import retain_freed_memory
 from tui.errors import located
-from tui.session.engine import Engine, EngineError
+from tui.session.engine import Engine
+from tui.session.views import EngineError
 from tui.session.scenario import Scenario
 
 if TYPE_CHECKING:
