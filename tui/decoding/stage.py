@@ -144,16 +144,17 @@ def bound_logits(cands: Candidates, stage: str) -> Candidates:
 
     A logit past the bound (an overflow to +-inf included) is set to the bound: tokens
     pushed to +inf stay the only likely ones and tie among themselves; tokens pushed to
-    -inf keep a probability of (almost exactly) 0 but stay in play, so a stage that
-    only reshapes never empties the kept set. NaN cannot come from finite logits and
-    the checked parameters; if it does, the stage is at fault and says so.
+    -inf get probability 0 beside any token left inside the range (and tie, if none
+    is), but stay in play, so a stage that only reshapes never empties the kept set.
+    NaN cannot come from finite logits and the checked parameters; if it does, the
+    stage has a bug, and the error (not a RecipeError: the recipe is valid) says so.
     """
     logits = cands.logits
     high, low = logits.max(), logits.min()
     if high <= LOGIT_BOUND and low >= -LOGIT_BOUND:
         return cands
     if np.isnan(high):
-        raise RecipeError(f"{stage} produced NaN logits; please report this recipe")
+        raise FloatingPointError(f"{stage} produced NaN logits")
     np.clip(logits, -LOGIT_BOUND, LOGIT_BOUND, out=logits)
     return cands
 

@@ -69,7 +69,8 @@ def build_engine(head: TranscriptHeader, lm: "LoadedModel", where: str = "<trans
     """An engine holding the panes that decode from the prompt; header id -> engine id.
 
     `where` names the file in errors."""
-    from tui.session.engine import Engine, EngineError
+    from tui.session.engine import Engine
+    from tui.session.views import EngineError
 
     starters = [p for p in head.panes if p.origin is None]
     if not starters:
@@ -93,7 +94,7 @@ def build_engine(head: TranscriptHeader, lm: "LoadedModel", where: str = "<trans
 
 def rerun(stored: StoredSession, lm: "LoadedModel") -> RerunResult:
     """Decode `stored` again on `lm` and return the first difference, if any."""
-    from tui.session.engine import EngineError
+    from tui.session.views import EngineError
 
     head = stored.header
     where = str(stored.path)
