@@ -35,7 +35,7 @@ try:
 except ImportError:
     from tests.sweep_files import write_sweep
 
-FUZZ = settings(max_examples=40, deadline=None, derandomize=True,
+FUZZ = settings(max_examples=25, deadline=None, derandomize=True,
                 suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow])
 
 # Values a field is replaced with: wrong types, huge and odd numbers, odd strings.
@@ -276,6 +276,7 @@ def check_transcript(tmp_path_factory, data: bytes, where: tuple | None) -> None
         assert names_a_field(str(refused), where), (where, str(refused))
     check_refused_by(["report", str(path), "--out", str(report)], path, report)
     check_refused_by(["rerun", str(path)], path, path.parent / "nothing")
+    check_refused_by(["replay", str(path)], path, path.parent / "nothing")  # before any screen
 
 
 @FUZZ
