@@ -21,7 +21,8 @@ from textual.widgets import Input
 from tui.app.app import make_app
 from tui.app.confirm_dialog import ConfirmDialog
 from tui.app.input_dialog import InputDialog
-from tui.transcripts.recovery_log import STATE_DIR_ENV, RecoveryLog, recovery_dir
+from tui.transcripts.recovery_log import RecoveryLog, recovery_dir
+from tui.settings import STATE_DIR_ENV
 from tui.transcripts.recovery_reader import read_recovery
 from tui.workbench.stepper import Failed, Stepped, Stepper
 

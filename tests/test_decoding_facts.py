@@ -132,7 +132,7 @@ def test_epsilon_and_eta_worked_examples() -> None:
     finite_logits,
     st.sampled_from(
         ["top_p=1e-9", "top_k=1", "min_p=1", "typical_p=1e-9", "epsilon=0.999", "eta=0.999",
-         "mirostat(tau=0.001,eta=0.1)", "greedy"]
+         "mirostat(tau=0.001,learning_rate=0.1)", "greedy"]
     ),
 )
 def test_every_truncating_stage_keeps_at_least_one_token(x: np.ndarray, text: str) -> None:

@@ -58,7 +58,7 @@ RECIPES = [
     "repetition_penalty=1.3 temperature=0.7 top_k=40 top_p=0.9",
     "min_p=0.05 typical_p=0.9 no_repeat_ngram=2",
     "presence_penalty=0.8 frequency_penalty=0.3 epsilon=0.003 eta=0.003 temperature=1.3",
-    "temperature=0.9 mirostat(tau=3,eta=0.3)",
+    "temperature=0.9 mirostat(tau=3,learning_rate=0.3)",
     "top_p=0.95 temperature=1.5 min_p=0.02",
 ]
 
@@ -119,7 +119,7 @@ def test_generation_config_names_what_it_leaves_out() -> None:
         ).to_generation_config()
     message = str(caught[0].message)
     assert "presence_penalty=0.3 (no GenerationConfig field)" in message
-    assert "mirostat(tau=5,eta=0.1) (no GenerationConfig field)" in message
+    assert "mirostat(tau=5,learning_rate=0.1) (no GenerationConfig field)" in message
     assert "temperature=2 (second temperature stage)" in message
     # transformers 5.24.0 applies temperature before top_p whatever the recipe says
     assert "temperature=0.7 will run before top_p=0.9" in message

@@ -30,7 +30,7 @@ def test_cut_keeps_tokens_whose_surprise_is_within_mu() -> None:
 def test_update_follows_the_papers_rule() -> None:
     # Basu et al. 2021, Alg. 1: e = S(X) - tau; mu <- mu - eta * e; mu starts at 2 tau
     x = np.log([0.5, 0.25, 0.125, 0.125])
-    sampler = Recipe.parse("mirostat(tau=1,eta=0.5)").sampler()
+    sampler = Recipe.parse("mirostat(tau=1,learning_rate=0.5)").sampler()
     assert sampler.states == (2.0,)
     sampler.distribution(x)
     sampler.observe(1)  # surprise -log2 0.25 = 2 bits under the distribution mirostat received
@@ -44,7 +44,7 @@ def test_surprise_is_measured_before_the_cut() -> None:
     # the authors' code (basusourya/mirostat, mirostat.py) takes the surprise from the
     # untruncated probabilities (`prob_original`), not from the cut, renormalised ones
     x = np.log([0.5, 0.25, 0.125, 0.125])
-    sampler = Recipe.parse("mirostat(tau=1,eta=1)").sampler()
+    sampler = Recipe.parse("mirostat(tau=1,learning_rate=1)").sampler()
     final = sampler.distribution(x)
     assert final[1] == pytest.approx(1 / 3)  # renormalised: would read log2(3) = 1.58 bits
     sampler.observe(1, final)
@@ -57,7 +57,7 @@ def test_mean_surprise_settles_within_five_percent_of_tau(size: int, exponent: f
     # Zipf distribution the running mean after a burn-in must lie within 5% of tau
     p = zipf(size, exponent)
     logits = np.log(p)
-    sampler = Recipe.parse(f"mirostat(tau={tau},eta=0.1)").sampler()
+    sampler = Recipe.parse(f"mirostat(tau={tau},learning_rate=0.1)").sampler()
     rng = np.random.default_rng(2021)
     surprises = []
     for _ in range(2500):
@@ -76,12 +76,12 @@ def test_a_forced_token_that_mirostat_cut_still_updates_mu() -> None:
     # anyway, its surprise under the distribution mirostat received updates mu:
     # 2 - 0.1 * (3 - 1) = 1.8 (Basu et al. 2021, Alg. 1, with the emitted token)
     x = np.log([0.5, 0.25, 0.125, 0.125])
-    sampler = Recipe.parse("mirostat(tau=1,eta=0.1)").sampler()
+    sampler = Recipe.parse("mirostat(tau=1,learning_rate=0.1)").sampler()
     assert sampler.distribution(x)[3] == 0.0
     sampler.observe(3)
     assert sampler.states[0] == pytest.approx(1.8, rel=1e-12)
     # a token an earlier stage had cut has no surprise to read: mu stays where it was
-    sampler = Recipe.parse("top_k=2 mirostat(tau=1,eta=0.1)").sampler()
+    sampler = Recipe.parse("top_k=2 mirostat(tau=1,learning_rate=0.1)").sampler()
     sampler.distribution(x)
     sampler.observe(3)
     assert sampler.states[1] == 2.0
@@ -90,7 +90,7 @@ def test_a_forced_token_that_mirostat_cut_still_updates_mu() -> None:
 def test_mirostat_in_a_chain_sees_the_earlier_stages() -> None:
     # surprise is read under the distribution the stage receives (after temperature here)
     x = np.log([0.5, 0.25, 0.125, 0.125])
-    sampler = Recipe.parse("temperature=0.5 mirostat(tau=1,eta=1)").sampler()
+    sampler = Recipe.parse("temperature=0.5 mirostat(tau=1,learning_rate=1)").sampler()
     received = np.array([0.25, 0.0625, 0.015625, 0.015625]) / 0.34375  # p^2 renormalised
     sampler.distribution(x)
     sampler.observe(0)

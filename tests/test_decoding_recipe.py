@@ -80,8 +80,8 @@ def test_written_order_is_kept_and_separators_are_free() -> None:
         ("epsilon=1e-5", "epsilon=1e-05"),
         ("eta=.0003", "eta=0.0003"),
         ("temperature=0", "greedy"),  # the issue: temperature=0 means greedy
-        ("mirostat=5", "mirostat(tau=5,eta=0.1)"),
-        ("mirostat( tau=3, eta=0.2 )", "mirostat(tau=3,eta=0.2)"),
+        ("mirostat=5", "mirostat(tau=5,learning_rate=0.1)"),
+        ("mirostat( tau=3, learning_rate=0.2 )", "mirostat(tau=3,learning_rate=0.2)"),
         ("presence_penalty=-0.5", "presence_penalty=-0.5"),
         ("top_k=+7", "top_k=7"),
         ("", ""),
@@ -105,15 +105,17 @@ def test_canonical_forms(text: str, canonical: str) -> None:
         ("top_k=-3", "top_k must be a whole number >= 0, got -3"),
         ("no_repeat_ngram=-1", "no_repeat_ngram must be a whole number >= 0, got -1"),
         ("mirostat(tau=0)", "mirostat tau must be > 0, got 0"),
-        ("mirostat(tau=5,eta=0)", "mirostat eta must be > 0, got 0"),
+        ("mirostat(tau=5,learning_rate=0)", "mirostat learning_rate must be > 0, got 0"),
+        ("mirostat(tau=5,eta=0.1)", "'mirostat(tau=5,eta=0.1)': mirostat parameter eta is now called "
+                                    "learning_rate; write e.g. mirostat(tau=5,learning_rate=0.1)"),
         ("top_p", "'top_p': top_p needs a value, e.g. top_p=0.9"),
         ("top_p=", "'top_p=': top_p needs a value, e.g. top_p=0.9"),
         ("top_p=abc", "'top_p=abc': top_p must be a number, got 'abc'"),
         ("top_p=nan", "'top_p=nan': top_p must be a number, got 'nan'"),
         ("top_k=5.5", "'top_k=5.5': top_k must be a whole number, got '5.5'"),
         ("greedy=1", "'greedy=1': greedy takes no value; write just greedy"),
-        ("mirostat", "'mirostat': mirostat needs tau, e.g. mirostat(tau=5,eta=0.1)"),
-        ("mirostat(tau=5,mu=3)", "'mirostat(tau=5,mu=3)': mirostat has no parameter 'mu'; it takes tau, eta"),
+        ("mirostat", "'mirostat': mirostat needs tau, e.g. mirostat(tau=5,learning_rate=0.1)"),
+        ("mirostat(tau=5,mu=3)", "'mirostat(tau=5,mu=3)': mirostat has no parameter 'mu'; it takes tau, learning_rate"),
         ("mirostat(tau=5", "unbalanced '(' in recipe 'mirostat(tau=5'"),
         ("top_p(0.9)", "'top_p(0.9)': top_p takes one value; write top_p=0.9"),
         ("9lives", "'9lives': not a stage; write name=value, e.g. top_p=0.9"),
@@ -186,7 +188,7 @@ def test_the_input_vector_is_not_modified() -> None:
 
 
 def test_sampler_state_moves_only_when_told_the_token() -> None:
-    recipe = Recipe.parse("temperature=0.9 mirostat(tau=2,eta=0.5)")
+    recipe = Recipe.parse("temperature=0.9 mirostat(tau=2,learning_rate=0.5)")
     sampler = recipe.sampler()
     x = np.log(np.array([0.5, 0.25, 0.125, 0.125]))
     assert sampler.states == (None, 4.0)  # mu starts at 2 tau (Basu et al. 2021, Alg. 1)

@@ -114,7 +114,7 @@ def test_batched_steps_give_the_logits_of_batch_one_steps(lm):
 
 
 def test_rewind_replays_the_same_draws(lm):
-    e = make(lm, ["temperature=1.0", "top_p=0.8", "mirostat(tau=3,eta=0.1)"])
+    e = make(lm, ["temperature=1.0", "top_p=0.8", "mirostat(tau=3,learning_rate=0.1)"])
     run(e, 10)
     before = e.view()
     e.rewind(4)
@@ -200,8 +200,9 @@ def test_force_rewinds_and_others_write_the_same_again(lm):
 
 def test_a_forced_token_that_mirostat_cut_steps_on(lm):
     # the pane writes the forced token and its mirostat state learns of it (its surprise
-    # under the distribution mirostat received); the step must not fail
-    e = make(lm, ["mirostat(tau=1,eta=0.5)"])
+    # under the distribution mirostat received); the step must not fail. tau = 3 bits
+    # keeps mu off its floor of 0, where a high surprise could not lower it further
+    e = make(lm, ["mirostat(tau=3,learning_rate=0.5)"])
     run(e, 2)
     final = e.pane(0).sampler.distribution(e.logits_at(0, 2), e.history(0, 2))
     cut = int(np.argmin(np.where(final > 0, np.inf, e.logits_at(0, 2))))  # least likely, cut

@@ -39,8 +39,8 @@ RECIPES = [
     "greedy",
     "top_k=1",
     "top_k=1 no_repeat_ngram=1",  # a ban that would leave nothing: the most likely stays
-    "temperature=0.9 mirostat(tau=3,eta=0.3)",
-    "mirostat(tau=2,eta=1) top_p=0.9",
+    "temperature=0.9 mirostat(tau=3,learning_rate=0.3)",
+    "mirostat(tau=2,learning_rate=1) top_p=0.9",
 ]
 
 
@@ -97,7 +97,7 @@ def test_the_model_defaults_would_leak_in_without_it(model) -> None:
 
 
 def test_mirostat_state_is_carried_across_steps_and_restarts_per_call(model) -> None:
-    recipe = Recipe.parse("mirostat(tau=2,eta=1)")
+    recipe = Recipe.parse("mirostat(tau=2,learning_rate=1)")
     kwargs = recipe.generate_kwargs()
     (processor,) = kwargs["logits_processor"]
     torch.manual_seed(5)

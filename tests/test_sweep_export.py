@@ -73,10 +73,10 @@ def test_a_generation_config_loads_back_and_keeps_our_token_sets(tmp_path, lm):
 
 
 def test_stages_a_generation_config_cannot_hold_fail_unless_lossy(tmp_path):
-    recipe = "top_p=0.9 temperature=0.7 mirostat(tau=3,eta=0.1)"
+    recipe = "top_p=0.9 temperature=0.7 mirostat(tau=3,learning_rate=0.1)"
     rc, _, err = run("export", recipe, "--as", "generation-config", str(tmp_path / "no"))
     assert rc == 2 and err.count("\n") == 1 and err.startswith("error: ")
-    assert "mirostat(tau=3,eta=0.1)" in err and "temperature=0.7 will run before top_p=0.9" in err
+    assert "mirostat(tau=3,learning_rate=0.1)" in err and "temperature=0.7 will run before top_p=0.9" in err
     assert "--lossy" in err and not (tmp_path / "no").exists()
     rc, _, err = run("export", recipe, "--as", "generation-config", str(tmp_path / "yes"), "--lossy")
     assert rc == 0 and err.startswith("warning: ") and "mirostat" in err
@@ -87,7 +87,7 @@ def test_stages_a_generation_config_cannot_hold_fail_unless_lossy(tmp_path):
 def test_the_python_snippet_runs_and_keeps_our_token_sets(lm):
     # stages transformers has no field for (mirostat, presence penalty) and an order it
     # would not use: the snippet keeps the recipe whole
-    recipe = "repetition_penalty=1.3 presence_penalty=0.4 top_k=40 temperature=0.8 mirostat(tau=3,eta=0.1)"
+    recipe = "repetition_penalty=1.3 presence_penalty=0.4 top_k=40 temperature=0.8 mirostat(tau=3,learning_rate=0.1)"
     rc, snippet, err = run("export", recipe, "--as", "python")
     assert rc == 0, err
     namespace: dict = {}

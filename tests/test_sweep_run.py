@@ -188,7 +188,7 @@ def test_endings_follow_their_rules(lm):
 
 def test_samples_do_not_depend_on_the_chunking(lm):
     prompts = tuple(tuple(lm.encode_prompt(p, None)) for p in PROMPTS)
-    recipes = ("temperature=0.9 top_p=0.9", "mirostat(tau=3,eta=0.1)")
+    recipes = ("temperature=0.9 top_p=0.9", "mirostat(tau=3,learning_rate=0.1)")
     runs = []
     for rows in (1, 3):  # 3 rows: chunks that split a recipe's samples
         job = SweepJob(prompts, recipes, samples=2, max_new_tokens=6, seed=11, chunk_rows=rows)
@@ -215,7 +215,7 @@ def test_a_bad_sweep_file_is_one_line_and_exit_2(tmp_path, tiny_model_dir, capsy
     bad = write_sweep(tmp_path / "bad.toml", tiny_model_dir, samples=0)
     assert cli(["sweep", str(bad)]) == 2
     err = capsys.readouterr().err
-    assert err == f"error: {bad}: samples: must be an integer >= 1, got 0\n"
+    assert err == f"error: {bad}: samples: must be an integer in [1, 100000], got 0\n"
     grid = tmp_path / "grid.toml"
     grid.write_text(bad.read_text().replace("samples = 0", "samples = 2")
                     + "[grid]\ntop_p = [0.9, 1.5]\n")

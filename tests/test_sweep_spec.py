@@ -60,8 +60,8 @@ def test_explicit_recipes_come_first_and_duplicates_keep_their_first_place():
 def test_grid_values_true_false_strings_and_full_stages():
     spec = parse('[grid]\nrepetition_penalty = [false, 1.3]\ngreedy = [true]\n')
     assert spec.recipes() == ["greedy", canonical("repetition_penalty=1.3 greedy")]
-    spec = parse('[grid]\nmirostat = [5, "(tau=3,eta=0.2)"]\n')
-    assert spec.recipes() == [canonical("mirostat(tau=5)"), canonical("mirostat(tau=3,eta=0.2)")]
+    spec = parse('[grid]\nmirostat = [5, "(tau=3,learning_rate=0.2)"]\n')
+    assert spec.recipes() == [canonical("mirostat(tau=5)"), canonical("mirostat(tau=3,learning_rate=0.2)")]
     # leaving every stage out is the empty recipe, the model's own distribution
     assert parse("[grid]\ntop_p = [false, 0.9]\n").recipes() == [canonical(""), canonical("top_p=0.9")]
 
@@ -117,11 +117,14 @@ def test_every_bad_field_names_file_field_and_reason(body, field, reason):
 
 BAD_TOP = [
     ('prompts = ["a"]\nsamples = 0\nmax_new_tokens = 8\nrecipes = ["greedy"]\n',
-     "samples", "must be an integer >= 1, got 0"),
+     "samples", "must be an integer in [1, 100000], got 0"),
     ('prompts = ["a"]\nsamples = true\nmax_new_tokens = 8\nrecipes = ["greedy"]\n',
-     "samples", "must be an integer >= 1, got True"),
+     "samples", "must be an integer in [1, 100000], got True"),
+    ('prompts = ["a"]\nsamples = 1_000_000_000_000_000_000_000_000_000_000\nmax_new_tokens = 8\n'
+     'recipes = ["greedy"]\n',
+     "samples", "must be an integer in [1, 100000], got 1000000000000000000000000000000"),
     ('prompts = ["a"]\nmax_new_tokens = 8\nrecipes = ["greedy"]\n',
-     "samples", "missing (samples per prompt and recipe, >= 1)"),
+     "samples", "missing (samples per prompt and recipe, 1..100000)"),
     ('prompts = ["a"]\nsamples = 1\nmax_new_tokens = 4097\nrecipes = ["greedy"]\n',
      "max_new_tokens", "must be an integer in [1, 4096], got 4097"),
     ('prompts = ["a"]\nsamples = 1\nrecipes = ["greedy"]\n', "max_new_tokens", "missing (1..4096)"),
@@ -180,7 +183,7 @@ ROUND_TRIP = (
     'recipes = ["top_p=0.9,temperature=0.7", "mirostat=4"]\n'
     'samples = 3\nmax_new_tokens = 20\nseed = 99\nchunk_rows = 5\nstop = ["\\n\\n", "END"]\n'
     '[grid]\nrepetition_penalty = [false, 1.2]\nepsilon = [1e-05, 0.0003]\n'
-    'mirostat = ["(tau=3,eta=0.2)"]\n'
+    'mirostat = ["(tau=3,learning_rate=0.2)"]\n'
 )
 
 

@@ -255,6 +255,9 @@ def test_a_large_file_is_read_with_bounded_memory(tmp_path):
 _text = st.text(max_size=12)
 _prob = st.floats(0.0, 1.0)
 _entropy = st.floats(0.0, 12.0)
+# recipes are checked when a transcript is read, so the generated ones must parse
+_recipe = st.sampled_from(["greedy", "temperature=0.7 top_p=0.9", "min_p=0.05",
+                           "mirostat(tau=5,learning_rate=0.1)", "repetition_penalty=1.2 top_k=40"])
 
 
 @st.composite
@@ -276,10 +279,9 @@ def transcripts(draw):
                 final_entropy=draw(_entropy), u=draw(_prob), top=top, forced=draw(st.booleans()),
                 stop=stop if t == n - 1 else None))
         columns.append(recs)
-        log = tuple(sorted(draw(st.lists(st.tuples(st.integers(0, 9), st.text(min_size=1, max_size=8)),
+        log = tuple(sorted(draw(st.lists(st.tuples(st.integers(0, 9), _recipe),
                                          min_size=1, max_size=3))))
-        panes.append(PaneHeader(pid, draw(st.text(min_size=1, max_size=8)),
-                                draw(st.text(min_size=1, max_size=8)),
+        panes.append(PaneHeader(pid, draw(st.text(min_size=1, max_size=8)), draw(_recipe),
                                 draw(st.none() | st.integers(0, 2**63 - 1)), log, None, stop))
     messages = draw(st.none() | st.lists(st.tuples(st.sampled_from(["system", "user"]), _text),
                                          min_size=1, max_size=2).map(tuple))

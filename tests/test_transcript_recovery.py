@@ -28,7 +28,8 @@ from tui.session.scenario import PaneSpec, Scenario
 from tui.session.views import PaneView, SessionView
 from tui.transcripts.headers import PaneHeader
 from tui.transcripts.reader import StoredSession, TranscriptError
-from tui.transcripts.recovery_log import STATE_DIR_ENV, RecoveryLog, recovery_dir
+from tui.transcripts.recovery_log import RecoveryLog, recovery_dir
+from tui.settings import STATE_DIR_ENV
 from tui.transcripts.recovery_reader import list_recoveries, read_recovery
 
 REPO = Path(__file__).resolve().parents[1]

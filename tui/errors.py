@@ -4,14 +4,21 @@ Anything the user can get wrong (a file, a field, a model name) raises `UserErro
 the command line prints `error: <message>` on stderr and exits with `exit_code`,
 never with a traceback. `open_input`/`read_text_input` turn a file that cannot be read
 into such a line; `first_line` shortens a library's exception for one.
+
+Anything else is a bug: `tui.files.crash_note` writes its traceback to a crash report
+and gives the words for the one line that says what failed and where the report is.
 """
 
 from __future__ import annotations
 
 import os
+import platform
 import re
+import traceback
+from datetime import datetime, timezone
 from pathlib import Path
 from typing import BinaryIO
+
 
 
 class UserError(Exception):

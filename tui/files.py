@@ -1,4 +1,6 @@
-"""Writing a user's file atomically: the one writer every transcript, report, sweep file and cache record uses.
+"""The files logitfork writes: the one atomic writer, the state folder and crash reports.
+
+`write_atomic` is the writer every transcript, report, sweep file and cache record uses.
 
 The file is written to a fresh temp file in the same folder, flushed and fsynced,
 renamed over the target with `os.replace`, and the folder is fsynced, so that after
@@ -15,9 +17,15 @@ no source.)
 from __future__ import annotations
 
 import os
+import platform
 import secrets
+import traceback
+from datetime import datetime, timezone
 from pathlib import Path
 from typing import Iterable
+
+from tui.errors import first_line
+from tui.settings import settings
 
 Data = str | bytes | Iterable[str]
 
@@ -66,3 +74,40 @@ def fsync_folder(folder: Path) -> None:
         pass
     finally:
         os.close(fd)
+
+
+def state_folder() -> Path:
+    """The user state folder (`LOGITFORK_STATE_DIR`, else platformdirs' user state dir).
+
+    Recovery logs and crash reports live there.
+    """
+    override = settings().state_dir
+    if override is not None:
+        return override
+    import platformdirs
+
+    return Path(platformdirs.user_state_dir("logitfork"))
+
+
+def write_crash_report(doing: str, exc: BaseException) -> Path:
+    """Write the traceback of an unexpected failure, with what was being done and the
+    versions, to ``crash-reports/`` in the state folder; return the file. Raises OSError."""
+    from tui import __version__
+
+    stamp = datetime.now(timezone.utc).strftime("%Y%m%dT%H%M%S%fZ")
+    path = state_folder() / "crash-reports" / f"crash-{stamp}-{os.getpid()}.txt"
+    path.parent.mkdir(parents=True, exist_ok=True)
+    lines = [f"logitfork {__version__} on Python {platform.python_version()} ({platform.platform()})",
+             f"doing: {doing}", f"when: {stamp}", "",
+             *"".join(traceback.format_exception(exc)).rstrip("\n").splitlines()]
+    return write_atomic(path, lines)
+
+
+def crash_note(doing: str, exc: BaseException) -> str:
+    """``unexpected TYPE: MESSAGE; the full report is in FILE`` for a failure while `doing`
+    (which the report records); writes the crash report it names."""
+    what = f"unexpected {type(exc).__name__}: {first_line(exc)}"
+    try:
+        return f"{what}; the full report is in {write_crash_report(doing, exc)}"
+    except OSError as write_exc:
+        return f"{what}; no report could be written ({write_exc.strerror or write_exc})"

@@ -190,7 +190,7 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
         except Exception as exc:  # noqa: BLE001 - any failure ends the app with one line
             from tui.workbench.stepper import describe
 
-            self.post_message(self.LoadDone(None, describe(exc)))
+            self.post_message(self.LoadDone(None, describe(exc, "opening the session in the app")))
             return
         self.post_message(self.LoadDone(source))
 

@@ -225,7 +225,8 @@ class InspectScreen(Screen[tuple[int, int, int] | None]):
             rows = top_rows(self.record, trace)
             recipes = recipe_rows(logits, history, self.record, pane, self.view.panes)
         except Exception as exc:  # noqa: BLE001 - shown in the view
-            self.post_message(self.Analysed(self.rows, None, f"failed: {describe(exc)}"))
+            failed = f"failed: {describe(exc, 'the inspect view analysis')}"
+            self.post_message(self.Analysed(self.rows, None, failed))
             return
         self.post_message(self.Analysed(rows, recipes))
 

@@ -24,7 +24,7 @@ CHAINS = (
     "min_p=0.05 temperature=1.5",
     "typical_p=0.95",
     "eta=0.0003",
-    "mirostat(tau=5,eta=0.1)",
+    "mirostat(tau=5,learning_rate=0.1)",
     "presence_penalty=0.5 frequency_penalty=0.3 no_repeat_ngram=3 top_k=40",
 )
 

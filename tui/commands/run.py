@@ -27,6 +27,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 def main(args: argparse.Namespace) -> int:
     from tui.commands.model_loading import load_for_command
     from tui.errors import UserError
+    from tui.files import write_atomic
     from tui.session.scenario import find_scenario, load_scenario
 
     scenario = load_scenario(find_scenario(args.scenario))  # check the file before loading
@@ -42,7 +43,11 @@ def main(args: argparse.Namespace) -> int:
     from tui.session.opening import open_session
     from tui.transcripts import format as transcript
     model_name = args.model or scenario.model or DEFAULT_MODEL
-    lm = load_for_command(model_name, dtype=args.dtype, allow_pickle=args.allow_pickle)
+    try:
+        lm = load_for_command(model_name, dtype=args.dtype, allow_pickle=args.allow_pickle)
+    except UserError as exc:  # say where the model's name came from
+        where = "--model" if args.model else f"{scenario.path}: model" if scenario.model else None
+        raise (UserError(f"{where}: {exc}", exc.exit_code) if where else exc) from None
     engine, info = open_session(lm, scenario, seed=args.seed)
     steps = min(args.steps or scenario.max_new_tokens, scenario.max_new_tokens)
     times: list[float] = []

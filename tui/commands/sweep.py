@@ -55,7 +55,10 @@ def main(args: argparse.Namespace) -> int:
     from tui.sweeps.progress import SweepProgress
     from tui.sweeps.runner import SweepRunner
 
-    lm = load_for_command(spec.model, allow_pickle=args.allow_pickle)
+    try:
+        lm = load_for_command(spec.model, allow_pickle=args.allow_pickle)
+    except UserError as exc:  # the model the sweep file names: say which file and field
+        raise UserError(f"{spec.path}: model: {exc}", exc.exit_code) from None
     job = build_job(spec, prompts, lm)
     print(check_batch(spec, lm, job), file=sys.stderr)  # rows per forward pass against free memory
     runner = lm.runner()

@@ -6,7 +6,7 @@ A recipe is a list of items, applied left to right, separated by spaces or comma
     item   := NAME                    e.g. greedy
             | NAME "=" NUMBER         e.g. top_p=0.9
             | NAME "(" KEY "=" NUMBER ("," KEY "=" NUMBER)* ")"
-                                      e.g. mirostat(tau=5,eta=0.1)
+                                      e.g. mirostat(tau=5,learning_rate=0.1)
 
 The empty text is the empty recipe: sample from the model's own distribution.
 Every error names the item it is about.
@@ -44,6 +44,7 @@ class StageSpec:
     make: Callable[..., Stage]
     example: str
     keys: tuple[str, ...] = ()  # parameter names for kind "params"; the first is the shorthand
+    renamed: tuple[tuple[str, str], ...] = ()  # (old parameter name, new one), for messages
 
 
 STAGES: dict[str, StageSpec] = {
@@ -56,7 +57,8 @@ STAGES: dict[str, StageSpec] = {
         StageSpec("typical_p", "real", TypicalP, "typical_p=0.95"),
         StageSpec("epsilon", "real", Epsilon, "epsilon=0.0003"),
         StageSpec("eta", "real", Eta, "eta=0.0003"),
-        StageSpec("mirostat", "params", MirostatV2, "mirostat(tau=5,eta=0.1)", ("tau", "eta")),
+        StageSpec("mirostat", "params", MirostatV2, "mirostat(tau=5,learning_rate=0.1)",
+                  ("tau", "learning_rate"), renamed=(("eta", "learning_rate"),)),
         StageSpec("repetition_penalty", "real", RepetitionPenalty, "repetition_penalty=1.2"),
         StageSpec("presence_penalty", "real", PresencePenalty, "presence_penalty=0.5"),
         StageSpec("frequency_penalty", "real", FrequencyPenalty, "frequency_penalty=0.5"),
@@ -117,6 +119,10 @@ def _params(spec: StageSpec, item: str, inner: str) -> dict[str, float]:
         if not eq:
             raise RecipeError(f"{item!r}: {spec.name} parameters are written key=value, e.g. {spec.example}")
         if key not in spec.keys:
+            new = dict(spec.renamed).get(key)
+            if new is not None:
+                raise RecipeError(f"{item!r}: {spec.name} parameter {key} is now called {new}; "
+                                  f"write e.g. {spec.example}")
             raise RecipeError(f"{item!r}: {spec.name} has no parameter {key!r}; it takes {', '.join(spec.keys)}")
         if key in values:
             raise RecipeError(f"{item!r}: {spec.name} parameter {key} is given twice")
@@ -159,3 +165,22 @@ def parse_stages(text: str) -> tuple[Stage, ...]:
     if not isinstance(text, str):
         raise RecipeError(f"a recipe must be text, got {type(text).__name__}")
     return tuple(parse_item(item) for item in split_items(text))
+
+
+_OLD_MIROSTAT_ETA = re.compile(r"(\bmirostat\s*\([^)]*?)\beta(\s*=)")
+
+
+def upgrade_stored_recipe(text: str) -> tuple[str, bool]:
+    """A recipe text from a file written by an older version, in today's spelling.
+
+    Transcripts written before mirostat's learning rate was renamed hold
+    ``mirostat(tau=5,eta=0.1)``; that `eta` can only mean the learning rate (the eta
+    stage is never written inside parentheses). Returns the text with it renamed
+    `learning_rate`, and whether anything changed. Every other text is returned as is.
+    """
+    upgraded = text
+    while True:
+        changed = _OLD_MIROSTAT_ETA.sub(r"\1learning_rate\2", upgraded)
+        if changed == upgraded:
+            return upgraded, upgraded != text
+        upgraded = changed

@@ -14,7 +14,14 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from tui.decoding.stage import Candidates, History, RecipeError, Stage, StatefulStage
+from tui.decoding.stage import (
+    Candidates,
+    History,
+    RecipeError,
+    Stage,
+    StatefulStage,
+    bound_logits,
+)
 
 INPUT = "input"  # the stage text of a trace's first entry: the model's own distribution
 
@@ -105,6 +112,10 @@ class Sampler:
                 cands, memo = stage.apply_with_state(cands, past, self._states[i])
                 if trace is None:
                     self._memos[i] = memo
+            elif stage.reshapes_logits:  # penalties: huge values may overflow, bound them
+                with np.errstate(over="ignore"):
+                    cands = stage.apply(cands, past)
+                cands = bound_logits(cands, stage.text())
             else:
                 cands = stage.apply(cands, past)
             if trace is not None:

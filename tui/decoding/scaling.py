@@ -11,7 +11,14 @@ from typing import ClassVar
 
 import numpy as np
 
-from tui.decoding.stage import Candidates, History, Stage, check_interval, format_number
+from tui.decoding.stage import (
+    LOGIT_BOUND,
+    Candidates,
+    History,
+    Stage,
+    check_interval,
+    format_number,
+)
 
 
 @dataclass(frozen=True, slots=True)
@@ -20,10 +27,16 @@ class Temperature(Stage):
 
     Softmax with temperature (Ackley et al. 1985; the standard softmax-temperature of
     the trade). Same as transformers' TemperatureLogitsWarper. T = 0 is `Greedy`.
+
+    When the quotients would leave the logit range (T of 1e-300 and less), the top
+    logit is subtracted first: the same distribution (softmax ignores a shift), with
+    the top token at 0 and the rest at or below it, floored at -LOGIT_BOUND; so a
+    tiny T tends to greedy (ties kept) instead of overflowing.
     """
 
     value: float
     name: ClassVar[str] = "temperature"
+    reshapes_logits: ClassVar[bool] = False  # keeps its result in range itself
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "value", check_interval(self.name, self.value, 0.0, 0.0, "[inf"))
@@ -33,7 +46,15 @@ class Temperature(Stage):
             return Greedy().apply(cands, history)
         if self.value == 1.0:
             return cands
-        np.divide(cands.logits, self.value, out=cands.logits)  # in place: the chain owns it
+        logits = cands.logits  # changed in place: the chain owns it
+        high = logits.max()
+        if max(high, -logits.min()) > LOGIT_BOUND * self.value:  # a quotient would leave the range
+            logits -= high
+            with np.errstate(over="ignore"):
+                np.divide(logits, self.value, out=logits)
+            np.maximum(logits, -LOGIT_BOUND, out=logits)
+            return cands
+        np.divide(logits, self.value, out=logits)
         return cands
 
     def text(self) -> str:
@@ -49,6 +70,7 @@ class Greedy(Stage):
     """
 
     name: ClassVar[str] = "greedy"
+    reshapes_logits: ClassVar[bool] = False
 
     def apply(self, cands: Candidates, history: History) -> Candidates:
         best = int(np.argmax(cands.logits))  # first maximum = lowest id (ids ascend)

@@ -26,6 +26,14 @@ class RecipeError(ValueError):
     """
 
 
+# Every logit a stage sees lies in [-LOGIT_BOUND, LOGIT_BOUND]. Half the float64 range,
+# so that the difference of any two (softmax's max shift, typical sampling's distances)
+# is still finite; a stage's arithmetic that leaves the range (temperature=1e-320, a
+# penalty of 1e308) is brought back by `bound_logits`. Model logits are float32
+# (|x| < 3.5e38), far inside it.
+LOGIT_BOUND = 1e307
+
+
 @lru_cache(maxsize=8)
 def _all_ids(vocab_size: int) -> np.ndarray:
     ids = np.arange(vocab_size, dtype=np.int64)
@@ -83,10 +91,16 @@ class Candidates:
             )
         if top == -math.inf:
             raise RecipeError("every logit is -inf: no token can be sampled")
-        if x.min() > -math.inf:
-            return cls(_all_ids(x.size), x, x.size)
-        ids = np.flatnonzero(x > -math.inf)
-        return cls(ids, x[ids], x.size)
+        low = x.min()
+        if low > -math.inf:
+            cands = cls(_all_ids(x.size), x, x.size)
+        else:
+            ids = np.flatnonzero(x > -math.inf)
+            cands = cls(ids, x[ids], x.size)
+            low = cands.logits.min()
+        if top > LOGIT_BOUND or low < -LOGIT_BOUND:
+            np.clip(cands.logits, -LOGIT_BOUND, LOGIT_BOUND, out=cands.logits)
+        return cands
 
     @property
     def size(self) -> int:
@@ -123,6 +137,26 @@ class Candidates:
         out = np.zeros(self.vocab_size, dtype=np.float64)
         out[self.ids] = self.probs()
         return out
+
+
+def bound_logits(cands: Candidates, stage: str) -> Candidates:
+    """`cands` with every logit brought into [-LOGIT_BOUND, LOGIT_BOUND], in place.
+
+    A logit past the bound (an overflow to +-inf included) is set to the bound: tokens
+    pushed to +inf stay the only likely ones and tie among themselves; tokens pushed to
+    -inf get probability 0 beside any token left inside the range (and tie, if none
+    is), but stay in play, so a stage that only reshapes never empties the kept set.
+    NaN cannot come from finite logits and the checked parameters; if it does, the
+    stage has a bug, and the error (not a RecipeError: the recipe is valid) says so.
+    """
+    logits = cands.logits
+    high, low = logits.max(), logits.min()
+    if high <= LOGIT_BOUND and low >= -LOGIT_BOUND:
+        return cands
+    if np.isnan(high):
+        raise FloatingPointError(f"{stage} produced NaN logits")
+    np.clip(logits, -LOGIT_BOUND, LOGIT_BOUND, out=logits)
+    return cands
 
 
 def keep_most_likely(cands: Candidates) -> np.ndarray:
@@ -184,6 +218,9 @@ class Stage(ABC):
 
     name: ClassVar[str]
     stateful: ClassVar[bool] = False
+    # False for stages that only cut (they leave the logits as they are); the chain
+    # checks the logits' range after every stage that may change them (`bound_logits`).
+    reshapes_logits: ClassVar[bool] = True
 
     @abstractmethod
     def apply(self, cands: Candidates, history: History) -> Candidates:

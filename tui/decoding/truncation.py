@@ -50,6 +50,7 @@ class TopK(Stage):
 
     k: int
     name: ClassVar[str] = "top_k"
+    reshapes_logits: ClassVar[bool] = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "k", check_whole(self.name, self.k, 0))
@@ -78,6 +79,7 @@ class TopP(Stage):
 
     p: float
     name: ClassVar[str] = "top_p"
+    reshapes_logits: ClassVar[bool] = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "p", check_interval(self.name, self.p, 0.0, 1.0, "(]"))
@@ -104,6 +106,7 @@ class MinP(Stage):
 
     min_p: float
     name: ClassVar[str] = "min_p"
+    reshapes_logits: ClassVar[bool] = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "min_p", check_interval(self.name, self.min_p, 0.0, 1.0, "[]"))
@@ -130,6 +133,7 @@ class TypicalP(Stage):
 
     mass: float
     name: ClassVar[str] = "typical_p"
+    reshapes_logits: ClassVar[bool] = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "mass", check_interval(self.name, self.mass, 0.0, 1.0, "(]"))
@@ -165,6 +169,7 @@ class Epsilon(Stage):
 
     epsilon: float
     name: ClassVar[str] = "epsilon"
+    reshapes_logits: ClassVar[bool] = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "epsilon", check_interval(self.name, self.epsilon, 0.0, 1.0, "[)"))
@@ -193,6 +198,7 @@ class Eta(Stage):
 
     epsilon: float
     name: ClassVar[str] = "eta"
+    reshapes_logits: ClassVar[bool] = False
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "epsilon", check_interval(self.name, self.epsilon, 0.0, 1.0, "[)"))

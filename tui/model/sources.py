@@ -123,9 +123,13 @@ def resolve_source(source: str, name: str, from_catalogue: bool = True) -> Resol
     if source.startswith("wheel:"):
         return _gguf_source(name, _wheel_file(name, source), location=source)
     path = Path(source).expanduser()
-    if path.is_dir():
+    try:
+        is_dir, is_file = path.is_dir(), path.is_file()
+    except OSError as exc:  # e.g. a name too long for the file system (Python 3.11 raises)
+        raise UserError(f"model {name[:80]}: not a usable path ({exc.strerror})") from None
+    if is_dir:
         return _folder_source(name, path.resolve(), kind="folder", location=str(path.resolve()))
-    if path.is_file():
+    if is_file:
         if path.suffix.lower() != ".gguf":
             raise UserError(
                 f"model {name}: {path} is a file but not a .gguf; pass a .gguf file or a save_pretrained folder"

@@ -7,7 +7,7 @@ A sweep is a TOML file of our own format (documented in the README):
     prompts = ["text", [{ role = "user", content = "..." }]]   # either prompts ...
     scenario = "harbour-town.toml"    # ... or a scenario file whose prompt is used
     recipes = ["greedy", "top_p=0.9"] # explicit recipe texts, and/or a [grid]
-    samples = 8                       # per prompt and recipe, >= 1 (greedy: 1, see samples_for)
+    samples = 8                       # per prompt and recipe, 1..100000 (greedy: 1, see samples_for)
     max_new_tokens = 60               # 1..4096
     seed = 11                         # optional, default 0
     chunk_rows = 32                   # optional, rows per forward pass, 1..256
@@ -20,7 +20,7 @@ Grid order: each expanded recipe applies its stages in the order the keys are wr
 in the [grid] table, and combinations are listed with the first key changing slowest
 (like `itertools.product`). A value is a number (``top_p = [0.9]`` gives "top_p=0.9"),
 a string put after ``=`` as written (or right after the name when it opens with "(":
-``mirostat = ["(tau=3,eta=0.2)"]``), ``true`` for the bare stage name (``greedy``) or
+``mirostat = ["(tau=3,learning_rate=0.2)"]``), ``true`` for the bare stage name (``greedy``) or
 ``false`` to leave the stage out of that combination (a combination that leaves every
 stage out is the empty recipe: the model's own distribution). Explicit recipes come
 first, then the grid; duplicates (equal canonical text) keep their first place.
@@ -50,8 +50,10 @@ MAX_NEW_TOKENS = 4096
 DEFAULT_CHUNK_ROWS = 32  # rows per forward pass unless the file says otherwise
 MAX_CHUNK_ROWS = 256
 MAX_RECIPES = 256
-# 2: a recipe that keeps one token runs once (`samples_for`), and repetition_penalty
-# follows transformers' sign rule; a folder of format 1 is refused, not mixed in.
+MAX_SAMPLES = 100_000  # per prompt and recipe: far past any useful sweep, short of a hang
+# 2: a recipe that keeps one token runs once (`samples_for`), repetition_penalty follows
+# transformers' sign rule and mirostat's rate is `learning_rate`; a folder of format 1 is
+# refused, not mixed in.
 FINGERPRINT_FORMAT = "logitfork-sweep/2"
 _KEYS = ("title", "model", "prompts", "scenario", "recipes", "grid", "samples",
          "max_new_tokens", "seed", "chunk_rows", "stop")
@@ -185,7 +187,7 @@ def parse_sweep_text(text: str, path: str | Path = "<sweep>") -> SweepSpec:
 
     explicit, grid, recipe_texts = _recipes(data, path)
     if "samples" not in data:
-        raise located(path, "samples", "missing (samples per prompt and recipe, >= 1)")
+        raise located(path, "samples", f"missing (samples per prompt and recipe, 1..{MAX_SAMPLES})")
     if "max_new_tokens" not in data:
         raise located(path, "max_new_tokens", f"missing (1..{MAX_NEW_TOKENS})")
     stop = data.get("stop", [])
@@ -196,7 +198,7 @@ def parse_sweep_text(text: str, path: str | Path = "<sweep>") -> SweepSpec:
         model=_string(data["model"], path, "model") if "model" in data else DEFAULT_MODEL,
         prompts=prompts, scenario=scenario, explicit_recipes=explicit, grid=grid,
         recipe_texts=recipe_texts,
-        samples=_integer(data, "samples", path, 1, None, None),
+        samples=_integer(data, "samples", path, 1, MAX_SAMPLES, None),
         max_new_tokens=_integer(data, "max_new_tokens", path, 1, MAX_NEW_TOKENS, None),
         seed=_integer(data, "seed", path, 0, 2**63 - 1, 0),
         chunk_rows=_integer(data, "chunk_rows", path, 1, MAX_CHUNK_ROWS, DEFAULT_CHUNK_ROWS),

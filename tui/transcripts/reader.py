@@ -31,6 +31,7 @@ from tui.transcripts.schema import (
     SchemaError,
     check_format,
     check_step,
+    old_spellings,
     parse_header,
     parse_step,
     upgrade_header,
@@ -135,6 +136,8 @@ def open_lines(path: Path, formats: tuple[str, ...], warn: Warn | None
     first = next(lines, None)
     head, _ = read_header_line(path, first, formats)
     assert first is not None  # read_header_line raised otherwise
+    if old_spellings(first.obj):
+        note(f"{path}: written with mirostat's old parameter name eta; read as learning_rate")
     return head, first, lines, warnings
 
 

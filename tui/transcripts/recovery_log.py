@@ -39,8 +39,9 @@ from datetime import datetime, timezone
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Iterable
 
+from tui.files import state_folder
 from tui.session.record import StepRecord
-from tui.settings import STATE_DIR_ENV, settings  # noqa: F401 - STATE_DIR_ENV: the variable's name, for callers
+from tui.settings import settings
 from tui.transcripts.format import dumps, header_of, step_line
 from tui.transcripts.headers import RECOVERY_FORMAT, PaneHeader
 
@@ -52,13 +53,8 @@ FLUSH_EVERY = 4
 
 
 def state_dir() -> Path:
-    """The user state folder (or `$LOGITFORK_STATE_DIR`)."""
-    override = settings().state_dir
-    if override is not None:
-        return override
-    import platformdirs
-
-    return Path(platformdirs.user_state_dir("logitfork"))
+    """The user state folder (or `$LOGITFORK_STATE_DIR`): `tui.files.state_folder`."""
+    return state_folder()
 
 
 def recovery_dir() -> Path:

@@ -64,23 +64,31 @@ def _changes(pane: PaneHeader) -> dict[int, str]:
     return ChangeLog(pane.recipe_log).after(pane.origin[1] if pane.origin else 0)
 
 
-def build_engine(head: TranscriptHeader, lm: "LoadedModel") -> tuple["Engine", dict[int, int]]:
-    """An engine holding the panes that decode from the prompt; header id -> engine id."""
+def build_engine(head: TranscriptHeader, lm: "LoadedModel", where: str = "<transcript>"
+                 ) -> tuple["Engine", dict[int, int]]:
+    """An engine holding the panes that decode from the prompt; header id -> engine id.
+
+    `where` names the file in errors."""
     from tui.session.engine import Engine
     from tui.session.views import EngineError
 
     starters = [p for p in head.panes if p.origin is None]
     if not starters:
-        raise UserError("the header has no pane that starts from the prompt")
+        raise UserError(f"{where}: panes: no pane starts from the prompt (every one is a fork)")
+    runner = lm.runner()
+    outside = [i for i in head.prompt_ids if i >= runner.vocab_size]
+    if outside:  # a model's embedding lookup would fail on it (or torch on a huge one)
+        raise UserError(f"{where}: prompt.ids: token id {outside[0]} is outside the vocabulary "
+                        f"of {lm.name} (0..{runner.vocab_size - 1})")
     specs = [PaneSpec(p.name, recipe_at_start(p), p.seed) for p in starters]
     try:
-        engine = Engine(lm.runner(), lm.decode, head.prompt_ids, specs, seed=head.seed,
+        engine = Engine(runner, lm.decode, head.prompt_ids, specs, seed=head.seed,
                         shared_draws=head.draw_log[0][1] if head.draw_log else head.shared_draws,
                         max_new_tokens=head.max_new_tokens,
                         stop_strings=head.stop, eos_ids=lm.eos_ids, max_context=lm.max_context,
                         streams=[p.id for p in starters])  # the draw stream follows the original id
     except EngineError as exc:
-        raise UserError(f"cannot re-run: {exc}") from None
+        raise UserError(f"{where}: cannot re-run: {exc}") from None
     return engine, {pane.id: live.id for pane, live in zip(starters, engine.view().panes)}
 
 
@@ -89,7 +97,8 @@ def rerun(stored: StoredSession, lm: "LoadedModel") -> RerunResult:
     from tui.session.views import EngineError
 
     head = stored.header
-    engine, ids = build_engine(head, lm)
+    where = str(stored.path)
+    engine, ids = build_engine(head, lm, where)
     forks = [(p, p.origin) for p in sorted(head.panes, key=lambda p: p.id) if p.origin]
     back = {live: own for own, live in ids.items()}  # engine pane id -> header pane id
     changes = {p.id: _changes(p) for p in head.panes}
@@ -103,8 +112,8 @@ def rerun(stored: StoredSession, lm: "LoadedModel") -> RerunResult:
                     continue
                 source = ids.get(origin)
                 if source is None:
-                    raise UserError(f"pane {pane.id} is forked from pane {origin}, "
-                                    "which does not exist at that step")
+                    raise UserError(f"{where}: pane {pane.id}: origin: forked from pane "
+                                    f"{origin}, which does not exist at step {t}")
                 ids[pane.id] = engine.fork(source, recipe_at_start(pane), pane.name, stream=pane.id)
                 back[ids[pane.id]] = pane.id
             if t in draw_changes:
@@ -130,7 +139,7 @@ def rerun(stored: StoredSession, lm: "LoadedModel") -> RerunResult:
             if difference:
                 break
     except EngineError as exc:
-        raise UserError(f"cannot re-run: {exc}") from None
+        raise UserError(f"{where}: cannot re-run: {exc}") from None
     return RerunResult(steps, compared, difference, _prompt_note(head, lm), dict(head.versions),
                        package_versions())
 

@@ -13,6 +13,8 @@ import math
 from dataclasses import dataclass
 from typing import Any, Callable
 
+from tui.decoding import Recipe, RecipeError
+from tui.decoding.grammar import upgrade_stored_recipe
 from tui.session.record import STOP_REASONS, StepRecord, TopToken
 from tui.transcripts.headers import VERSION, PaneHeader, TranscriptHeader
 
@@ -144,7 +146,7 @@ def parse_pane(obj: Any, where: str) -> PaneHeader:
                 or entry[0] < 0 or not isinstance(entry[1], str)):
             raise SchemaError(f"{where}.recipe_log[{i}]: must be [step >= 0, recipe], "
                               f"got {_short(entry)}")
-        log.append((entry[0], entry[1]))
+        log.append((entry[0], _recipe(entry[1], f"{where}.recipe_log[{i}]")))
     if [s for s, _ in log] != sorted(s for s, _ in log):
         raise SchemaError(f"{where}.recipe_log: steps must be in order")
     origin = obj.get("origin")
@@ -156,9 +158,28 @@ def parse_pane(obj: Any, where: str) -> PaneHeader:
         origin = (origin[0], origin[1])
     return PaneHeader(id=_int(obj, "id", where=f"{where}.id", low=0),
                       name=_str(obj, "name", f"{where}.name"),
-                      recipe=_str(obj, "recipe", f"{where}.recipe"), seed=seed,
+                      recipe=_recipe(_str(obj, "recipe", f"{where}.recipe", empty=True),
+                                     f"{where}.recipe"), seed=seed,
                       recipe_log=tuple(log), origin=origin,
                       stop=_stop(obj.get("stop"), f"{where}.stop"))
+
+
+def _recipe(text: str, where: str) -> str:
+    """A stored recipe text in today's spelling, checked to parse (`upgrade_stored_recipe`)."""
+    upgraded, _ = upgrade_stored_recipe(text)
+    try:
+        Recipe.parse(upgraded)
+    except RecipeError as exc:
+        raise SchemaError(f"{where}: {exc}") from None
+    return upgraded
+
+
+def old_spellings(obj: dict[str, Any]) -> bool:
+    """Whether a raw header's pane recipes use a spelling `upgrade_stored_recipe` renames
+    (call it on a header `parse_header` accepted)."""
+    texts = [t for p in obj["panes"]
+             for t in (p.get("recipe"), *(r for _, r in p.get("recipe_log", ())))]
+    return any(upgrade_stored_recipe(t)[1] for t in texts)
 
 
 def check_step(obj: dict[str, Any]) -> None:

@@ -25,6 +25,7 @@ from dataclasses import dataclass
 from typing import TYPE_CHECKING, Any, Callable
 
 from tui.errors import UserError
+from tui.files import crash_note
 from tui.session.views import EngineError, SessionView
 
 if TYPE_CHECKING:
@@ -70,14 +71,20 @@ STOPPED_ALL = "every pane has stopped"  # the RunChanged reason when the session
 Operation = Callable[["Engine"], Any]
 
 
-def describe(exc: BaseException) -> str:
-    """One line for an error from the engine or the model."""
+def describe(exc: BaseException, doing: str | None = None) -> str:
+    """One line for an error from the engine or the model.
+
+    Anything but an expected kind (out of memory, the engine's, the user's, a bad value)
+    is a bug: with `doing` given, its traceback goes to a crash report that the line names.
+    """
     if isinstance(exc, MemoryError):
         return "out of memory"
     text = str(exc).strip().splitlines()
     first = text[0] if text else ""
     if isinstance(exc, (EngineError, UserError, ValueError)) and first:
         return first
+    if doing is not None:
+        return crash_note(doing, exc)
     return f"{type(exc).__name__}: {first}" if first else type(exc).__name__
 
 
@@ -176,7 +183,7 @@ class Stepper:
             result = operation(self.engine)
         except Exception as exc:  # noqa: BLE001 - shown to the user, session kept
             view = self._safe_view()
-            self._emit(Failed(label, describe(exc), view))
+            self._emit(Failed(label, describe(exc, f"{label} in the app"), view))
             self._follow(view)
             return
         view = self.engine.view()
@@ -196,7 +203,7 @@ class Stepper:
             self.pause("a step failed")
             self._recover(before)
             view = self._safe_view()
-            self._emit(Failed("step", describe(exc), view))
+            self._emit(Failed("step", describe(exc, "a step in the app"), view))
             self._follow(view)
             return
         view = engine.view()
