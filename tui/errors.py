@@ -12,10 +12,7 @@ and gives the words for the one line that says what failed and where the report 
 from __future__ import annotations
 
 import os
-import platform
 import re
-import traceback
-from datetime import datetime, timezone
 from pathlib import Path
 from typing import BinaryIO
 

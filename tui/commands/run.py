@@ -37,7 +37,6 @@ def main(args: argparse.Namespace) -> int:
         raise UserError(f"--seed: must be >= 0, got {args.seed}")
 
     from tui.commands.progress_display import ProgressDisplay
-    from tui.files import write_atomic
     from tui.model.catalogue import DEFAULT_MODEL
     from tui.progress import ProgressEvent
     from tui.session.opening import open_session

@@ -41,7 +41,6 @@ from typing import TYPE_CHECKING, Any, Iterable
 
 from tui.files import state_folder
 from tui.session.record import StepRecord
-from tui.settings import settings
 from tui.transcripts.format import dumps, header_of, step_line
 from tui.transcripts.headers import RECOVERY_FORMAT, PaneHeader
 
