@@ -54,7 +54,7 @@ def scheme_text(scheme: Scheme) -> Text:
     mark = scheme.annotation_style()
     text.append(PART_MARK, mark)
     text.append(" where a pane's text leaves the pane it is compared with (its fork source, "
-                "a twin with the same recipe, or the focused pane); ")
+                "a twin with the same recipe, or the first pane); ")
     text.append(FORK_MARK, mark)
     text.append(" the step a fork starts from; ")
     text.append(EDIT_MARK, mark)
