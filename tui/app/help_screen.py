@@ -17,7 +17,10 @@ CAUTION = ("Generated text is raw model output: it can be false, biased or offen
            "is not filtered. Check any setting chosen here on your own data before use.")
 
 INSPECT_KEYS = (
-    ("\u2191 \u2193", "choose a row of the top-20 table"),
+    ("\u2191 \u2193", "choose a row of the table (it starts on the chosen token)"),
+    ("m", "100 more ranks of the distribution (a live session: the whole vocabulary)"),
+    ("k", "the whole kept set, in raw order (again: back to the top ranks)"),
+    ("/", "find tokens by their text; escape leaves the search"),
     ("enter", "force the chosen row's token at this step (asks first): the session rewinds "
               "there and the pane goes on from that token"),
     ("escape", "back to the panes"),
