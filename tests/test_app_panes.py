@@ -130,3 +130,10 @@ async def test_a_stopped_pane_is_not_redrawn():
         app.grid.sync(view(11), 2)  # the cursor moved back: both redraw up to it
         await pilot.pause()
         assert first.body_draws == a + 1 and second.body_draws == b + 9
+
+
+def test_the_busy_label_stands_apart_from_the_model_name():
+    from tui.app.top_bar import BarState, bar_text
+
+    plain = bar_text(BarState(model="smollm2", busy="force")).plain
+    assert "force\u2026   smollm2" in plain  # its chip, then a gap, then the name

@@ -257,10 +257,12 @@ class InspectScreen(Screen[tuple[int, int, int] | None]):
         if self.recipes is None:
             table.add_row(Text(note, style="italic"), "", "", "")
             return
-        side = 62 if self.size.width >= WIDE_COLUMNS else max(self.size.width // 2 - 2, 30)
+        # the recipe column gets what the panel leaves (cell padding: 2 per column)
+        panel = self.query_one("#inspect-recipes").content_size.width
+        side = panel or (62 if self.size.width >= WIDE_COLUMNS else self.size.width * 2 // 3 - 2)
         names = max((len(shown_line(r.name)) for r in self.recipes), default=4)
-        name_width = min(max(names, 4), 16)
-        recipe_width = max(side - name_width - 7 - 10 - 6, 12)  # kept, p(chosen), gaps
+        name_width = min(max(names, 4), max(12, side // 4))
+        recipe_width = max(side - name_width - 5 - 9 - 8, 12)  # kept, p(chosen), padding
         for row in self.recipes:
             name = Text(cut_items(shown_line(row.name), name_width),
                         style="bold" if row.own else "")

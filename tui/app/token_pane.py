@@ -124,7 +124,7 @@ class TokenPane(Vertical, can_focus=True):
         self._upto = 0
         self._version = 0
         self._marks: tuple[TextMark, ...] = ()
-        self._titled: str | None = None  # the name the border title shows
+        self._titled: tuple[str, int] | None = None  # the name and width the title shows
         self.body_draws = 0  # how many times the body was rebuilt (tests, the bench)
 
     def compose(self) -> ComposeResult:
@@ -160,9 +160,10 @@ class TokenPane(Vertical, can_focus=True):
             return
         width = max(self.content_size.width, 12)
         upto = min(self._upto, len(pane.records))
-        if self._titled != pane.name:
-            self._titled = pane.name
-            self.border_title = Text(shown_line(pane.name), style="bold")
+        if self._titled != (pane.name, width):  # cut between words, never inside one
+            self._titled = (pane.name, width)
+            self.border_title = Text(cut_items(shown_line(pane.name), max(width - 4, 6)),
+                                     style="bold")
         self.recipe_line = cut_items(shown_line(pane.recipe), width)
         self.status_key = (self._version, upto, width)
         self.body_key = (self._version, upto, width, self._marks, self.prompt)
