@@ -90,6 +90,17 @@ def test_cut_items_never_cuts_a_stage():
     assert cut_items("top_p=0.9 temperature=1", 12) != cut_items("top_p=0.95 temperature=1", 12)
 
 
+def test_cut_apart_keeps_different_recipes_apart():
+    from tui.app.fitting import cut_apart
+
+    recipes = ["temperature=1.5 top_p=0.9", "temperature=1.5 top_p=0.95", "greedy"]
+    cut = cut_apart(recipes, 17)
+    assert cut == [ELLIPSIS + " top_p=0.9", ELLIPSIS + " top_p=0.95", "greedy"]
+    assert len(set(cut)) == 3
+    assert cut_apart(["temperature=1.5 top_p=0.9", "min_p=0.1"], 17) == \
+        ["temperature=1.5 " + ELLIPSIS, "min_p=0.1"]  # nothing alike: cut from the start
+
+
 def test_status_fits_two_lines_at_any_pane_width():
     recs = tuple(_rec(i, 1) for i in range(12))
     recs = recs[:-1] + (replace(recs[-1], stop="end of text", kept=40000),)

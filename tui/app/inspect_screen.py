@@ -32,7 +32,7 @@ from textual.widgets import DataTable, Input, Sparkline, Static
 
 from tui.app.colouring import FORCED_MARK, Scheme
 from tui.app.confirm_dialog import ConfirmDialog
-from tui.app.fitting import cut_items
+from tui.app.fitting import cut_apart, cut_items
 from tui.app.key_bar import KeyBar
 from tui.app.safe_text import shown_line, shown_token
 from tui.app.token_pane import pane_text, prompt_tail
@@ -263,7 +263,8 @@ class InspectScreen(Screen[tuple[int, int, int] | None]):
         names = max((len(shown_line(r.name)) for r in self.recipes), default=4)
         name_width = min(max(names, 4), max(12, side // 4))
         recipe_width = max(side - name_width - 5 - 9 - 8, 12)  # kept, p(chosen), padding
-        for row in self.recipes:
+        recipes = cut_apart([shown_line(r.recipe) for r in self.recipes], recipe_width)
+        for row, recipe in zip(self.recipes, recipes):
             name = Text(cut_items(shown_line(row.name), name_width),
                         style="bold" if row.own else "")
             if row.error:
@@ -276,7 +277,7 @@ class InspectScreen(Screen[tuple[int, int, int] | None]):
                      justify="right", style="" if row.chosen_prob > 0 else "bold")
             kept = f"{row.kept}+" if row.kept_beyond else str(row.kept)
             table.add_row(name, Text(approx + kept, justify="right"), p,
-                          Text(cut_items(shown_line(row.recipe), recipe_width), style="dim"))
+                          Text(recipe, style="dim"))
 
     def _fill_spark_labels(self) -> None:
         rec = self.record
