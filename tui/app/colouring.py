@@ -47,10 +47,6 @@ class Scheme:
 
     depth: Depth = "truecolor"
 
-    @classmethod
-    def for_mono(cls, mono: bool) -> "Scheme":
-        return cls("mono" if mono else "truecolor")
-
     @property
     def mono(self) -> bool:
         return self.depth == "mono"
