@@ -209,7 +209,5 @@ LEGEND_TEXT = (
     "the recipe let in (>10). Ink = its probability under the pane's final distribution, "
     "one hue from pale to deep: the plain pale ink at >= 50%, pale sky blue at 5-50%, "
     "deep sky blue in italics below 5%. "
-    f"A bluish green chip with {FORCED_MARK} = a token chosen by hand; {PART_MARK} = where "
-    f"a pane's text leaves the pane it is compared with, {FORK_MARK} = a fork point, "
-    f"{EDIT_MARK} = a recipe change."
+    f"A bluish green chip with {FORCED_MARK} = a token chosen by hand."
 )
