@@ -33,8 +33,11 @@ def live_source(lm, sc: Scenario | None = None, *, seed: int = 3) -> LiveSource:
 
 
 def live_app(lm, sc: Scenario | None = None, *, seed: int = 3, mono: bool = False,
-             save_folder=None) -> LogitforkApp:
-    app = make_app(source=live_source(lm, sc, seed=seed), mono=mono, save_folder=save_folder)
+             save_folder=None, depth: str = "truecolor") -> LogitforkApp:
+    """The app on the tiny model; `depth` pinned, so that the terminal running the tests
+    does not decide the colours."""
+    app = make_app(source=live_source(lm, sc, seed=seed), mono=mono, save_folder=save_folder,
+                   depth=depth)
     app.frozen_rate = 0.0  # the clock-dependent rate would make screens differ
     return app
 

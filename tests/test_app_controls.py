@@ -16,6 +16,7 @@ from tui.app.inspect_screen import InspectScreen
 from tui.app.recipe_dialog import RecipeDialog
 from tui.app.safe_text import shown
 from tui.app.token_pane import TokenPane
+from tui.token_style import EDIT_MARK, FORK_MARK, PART_MARK
 from tui.transcripts.reader import StoredSession
 
 try:
@@ -109,7 +110,7 @@ async def test_fork_edit_add_remove(lm):
         await pilot.press("enter")
         await wait_until(pilot, lambda: len(app.view.panes) == 5 and idle(app), what="fork")
         fork = app.view.panes[-1]
-        assert fork.recipe == "temperature=0.7 top_k=5" and fork.name == "greedy fork"
+        assert fork.recipe == "temperature=0.7 top_k=5" and fork.name == "greedy/1"
         assert [r.token_id for r in fork.records] == \
             [r.token_id for r in app.view.panes[0].records]
         assert fork.origin == (app.view.panes[0].id, 3)
@@ -193,13 +194,17 @@ async def test_click_on_a_token_inspects_it(lm):
         await steps(pilot, app, 4)
         body = app.grid.panes()[1].query_one(".pane-body")
         where = step = None
-        for y in range(body.size.height):  # the first cell that shows a token (not a prompt)
-            x = 0
+        marks = (PART_MARK, FORK_MARK, EDIT_MARK)
+        for y in range(body.size.height):  # the first cell that shows a token (not a prompt,
+            x = 0  # not a mark, not just after a zero-width piece: a lone combining mark)
+            after_zero = False
             for seg in body.render_line(y):
                 step = seg.style.meta.get("step") if seg.style is not None else None
-                if step is not None and seg.cell_length:
+                if step is not None and seg.cell_length and seg.text not in marks \
+                        and not after_zero:
                     where = (x, y)
                     break
+                after_zero = seg.cell_length == 0 and bool(seg.text)
                 x += seg.cell_length
             if where:
                 break

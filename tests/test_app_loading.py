@@ -79,3 +79,28 @@ def test_no_color_means_mono():
     assert not wants_mono(False, {"NO_COLOR": ""})
     assert not wants_mono(False, {})
     assert wants_mono(True, {})
+
+
+async def test_the_loading_panel_says_what_happens_and_never_shows_an_unknown_percentage():
+    from textual.app import App
+
+    class Host(App[None]):
+        def compose(self):
+            yield LoadingPanel("some-model", id="loading")
+
+    app = Host()
+    async with app.run_test(size=(80, 24)) as pilot:
+        panel = app.query_one(LoadingPanel)
+        title = lambda: panel.query_one("#loading-title").content.plain  # noqa: E731
+        stage = lambda: panel.query_one("#loading-stage").content.plain  # noqa: E731
+        assert "convert" not in title()  # a warm start claims no conversion
+        panel.set_progress("loading the weights", 0.5)
+        await pilot.pause()
+        assert stage() == "loading the weights  50%" and "convert" not in title()
+        panel.set_progress("reading the prompt", None)  # a stage with no fraction
+        await pilot.pause()
+        assert stage() == "reading the prompt  50%"  # the bar stays, no "--%"
+        assert "--%" not in app.export_screenshot()
+        panel.set_progress("de-quantising weights", 0.3)  # a first GGUF load says so
+        await pilot.pause()
+        assert "converting the GGUF file once" in title() and stage().endswith("50%")

@@ -26,6 +26,7 @@ from tui.app.safe_text import shown, shown_token
 from tui.cli import main as cli_main
 from tui.files import write_atomic
 from tui.session.step_analysis import format_prob
+from tui.token_style import EDIT_MARK, FORK_MARK, PART_MARK
 from tui.transcripts.format import lines
 from tui.transcripts.reader import StoredSession
 from tui.workbench.replay_source import replay_source
@@ -71,7 +72,11 @@ async def test_replay_shows_the_session_and_moves_the_cursor(recorded):
         stored = StoredSession.open(path)
         for widget, pane in zip(app.grid.panes(), live.panes):
             body = widget.query_one(".pane-body").content.plain
+            for mark in (PART_MARK, FORK_MARK, EDIT_MARK):  # marks annotate, they are not text
+                body = body.replace(mark, "")
             assert body.endswith(shown(stored.pane_text(pane.id)))
+            if pane.origin is not None:  # a fork shows its fork point inside its text
+                assert FORK_MARK in widget.query_one(".pane-body").content.plain
         assert "replay" in app.screen.query_one("#top-bar").content.plain  # what this is
         await pilot.press("left", "left", "left")
         assert app.cursor == STEPS - 3

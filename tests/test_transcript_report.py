@@ -78,14 +78,18 @@ def test_the_html_is_self_contained_and_names_every_pane(html_report):
 
 def test_tokens_carry_the_shared_scheme_classes(html_report):
     html = html_report.read_text()
-    # Pane 1, step 0: rank 4 (band "4-10", index 2), final p 1/8 (band "5-50%", index 1),
+    # Pane 1, step 0: rank 4 (band "2-10", index 1), final p 1/8 (band "5-50%", index 1),
     # forced -> the forced class; step 1: rank 1, p 1/2 -> band 0, ">=50%" -> "t001"
     # (the second token of a pane has the alternate shade).
-    assert ts.rank_band(4) == 2 and ts.final_band(0.125) == 1
+    assert ts.rank_band(4) == 1 and ts.final_band(0.125) == 1
     assert 'class="tf0" title="warm · step 0' in html
     assert 'class="t001" title="warm · step 1' in html
     colours = ts.token_colours(1, 0.5, alternate=True)
     assert f".t001 {{ color: {colours.foreground}; background: {colours.background}; }}" in html
+    # a long shot (band 2) at < 5% (band 2): bold, underlined, in italics, in the deep ink
+    deep = ts.band_colours(2, 2)
+    assert (f".t220 {{ color: {deep.foreground}; background: {deep.background}; "
+            "font-weight: 700; text-decoration: underline; font-style: italic; }") in html
 
 
 def test_perplexity_matches_the_hand_computed_value(html_report, tmp_path):
@@ -150,7 +154,7 @@ def test_a_headless_chromium_renders_the_report(html_report, tmp_path):
 # ----- the shared scheme ------------------------------------------------------------------------
 
 def test_band_edges_and_blend_worked_by_hand():
-    assert [ts.rank_band(r) for r in (1, 2, 3, 4, 10, 11, 50, 51, 10**6)] == [0, 1, 1, 2, 2, 3, 3, 4, 4]
+    assert [ts.rank_band(r) for r in (1, 2, 3, 4, 10, 11, 50, 51, 10**6)] == [0, 1, 1, 1, 1, 2, 2, 2, 2]
     assert [ts.final_band(p) for p in (1.0, 0.5, 0.4999, 0.05, 0.0499, 0.0)] == [0, 0, 1, 1, 2, 2]
     assert ts.blend("#ffffff", "#000000", 0.5) == "#808080"  # 127.5 rounds to 128 (half even)
     assert ts.blend("#E69F00", "#16181c", 0.0) == "#16181c"
@@ -161,12 +165,14 @@ def test_band_edges_and_blend_worked_by_hand():
 def test_the_apps_colouring_uses_the_same_bands_and_colours():
     from tui.app import colouring
 
-    assert [(b.label, b.low, b.high, b.colour.lower()) for b in colouring.RANK_BANDS] == \
-        [(b.label, b.low, b.high, b.colour.lower()) for b in ts.RANK_BANDS]
-    combos = [(rank, p, alt, forced) for rank in (1, 2, 4, 11, 51) for p in (0.9, 0.2, 0.01)
-              for alt in (False, True) for forced in (False, True)]
-    for rank, p, alt, forced in combos:
-        style = colouring.Scheme().token_style(rank, p, alternate=alt, forced=forced)
-        ours = ts.token_colours(rank, p, alternate=alt, forced=forced)
-        assert style.bgcolor.get_truecolor().hex == ours.background
+    assert colouring.RANK_BANDS == ts.RANK_BANDS and colouring.FINAL_BANDS == ts.FINAL_BANDS
+    combos = [(rank, p, alt, forced, depth) for rank in (1, 2, 4, 11, 51)
+              for p in (0.9, 0.2, 0.01) for alt in (False, True) for forced in (False, True)
+              for depth in ts.DEPTHS]
+    for rank, p, alt, forced, depth in combos:
+        style = colouring.Scheme(depth).token_style(rank, p, alternate=alt, forced=forced)
+        ours = ts.token_colours(rank, p, alternate=alt, forced=forced, depth=depth)
+        assert style.bgcolor.get_truecolor().hex == ours.background.lower()
         assert style.color.get_truecolor().hex == ours.foreground.lower()
+        assert (bool(style.bold), bool(style.underline), bool(style.italic)) == \
+            (ours.bold, ours.underline, ours.italic)

@@ -1,32 +1,42 @@
-"""The one token colouring scheme, as plain data: bands, Okabe–Ito colours, legend.
+"""The one token encoding, as plain data: two channels, one per question, at every colour depth.
 
-Every view of a token must read this module, so that a colour means the same thing
-everywhere: the app's colouring (`tui/app/colouring.py`) must take its bands, colours
-and washes from here and only turn them into Rich styles; the HTML and Markdown reports
-turn them into CSS and words. Standard library only: no Textual, no Rich.
+Every view of a token reads this module, so that a look means the same thing everywhere:
+the app (`tui/app/colouring.py` turns these into Rich styles), the HTML report (CSS) and
+the Markdown report (words). Standard library only: no Textual, no Rich.
 
-The scheme (the app's, first written in `tui/app/colouring.py`):
+The encoding ("shape for the model, ink for the recipe"):
 
-- colour = the token's rank in the raw model distribution, in five bands
-  (1, 2-3, 4-10, 11-50, >50): plain light grey for the model's first choice, then sky
-  blue, yellow, orange and reddish purple, from the palette of Okabe and Ito (2008),
-  "Color Universal Design", which stays distinguishable under common colour blindness.
-  (Its darker hues are too dark for text on the dark pane background.) Without colour
-  each band is a text style instead (plain, italic, underline, bold, bold underline).
-- background = the token's probability under the pane's final distribution, in three
-  bands (>= 50 %, 5-50 %, < 5 %): none, a faint wash of the token's hue, or the hue as
-  a full highlighter behind dark text. The less sure the draw, the louder.
-- a token chosen by hand has a bluish green background and a marker before it;
-  neighbouring tokens alternate between two close background shades.
+- shape = the token's rank under the model (the raw distribution), in three bands chosen
+  for this job: the model's own pick (rank 1) is plain text; a plausible alternative
+  (ranks 2-10) is underlined; a long shot the recipe let in (rank > 10) is bold and
+  underlined. Shape needs no colour, so it reads the same in every depth and in mono.
+- ink = the token's probability under the pane's final (truncated) distribution, as a
+  lightness ramp of one hue (sky blue, from Okabe and Ito's colour-blind-safe palette,
+  2008): >= 50 % the plain pale ink, 5-50 % pale sky, < 5 % deep sky in italics. A ramp
+  of lightness survives every common colour-vision deficiency (only lightness is needed),
+  and the italics of the last step make it readable where the ink is not (mono, a
+  16-colour palette the terminal chose).
+- a token chosen by hand: a marker before it and a bluish green chip behind it (dark text).
+- token boundaries: neighbours alternate between two close background shades.
+
+Colour depth: a terminal with 256 or 16 colours maps a true colour to the nearest one it
+has, which merged close shades before. So each depth has its own ink, picked from that
+depth's own palette (xterm's 256-colour cube and grey ramp; the 16 standard slots, as
+Rich numbers them), so that nothing is merged by the terminal. Mono uses greys (the app's
+monochrome filter keeps lightness) and the same shapes.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
 from functools import lru_cache
+from typing import Literal
+
+Depth = Literal["truecolor", "256", "16", "mono"]
+DEPTHS: tuple[Depth, ...] = ("truecolor", "256", "16", "mono")
 
 # Okabe & Ito 2008, the eight-colour palette. sRGB values as reprinted by Wong 2011,
-# Nature Methods 8:441 (recalled from memory, as in tui/app/colouring.py).
+# Nature Methods 8:441 (recalled from memory).
 OKABE_ITO: dict[str, str] = {
     "black": "#000000",
     "orange": "#E69F00",
@@ -39,57 +49,90 @@ OKABE_ITO: dict[str, str] = {
 }
 
 PANE_BACKGROUND = "#16181c"  # a pane's background (the app's app.tcss uses the same)
-ALTERNATE_BACKGROUND = "#22252b"  # every other token, to show token boundaries
-NEUTRAL = "#dcdfe4"  # rank 1: plain text
-DARK_TEXT = "#0b0c0e"  # text on a highlighter background
+NEUTRAL = "#dcdfe4"  # plain text: the pale ink
+DARK_TEXT = "#0b0c0e"  # text on a chip (a forced token)
 PROMPT_COLOUR = "#7c828c"  # the prompt, in italics
 FORCED_COLOUR = OKABE_ITO["bluish_green"]
 FORCED_MARK = "\u25b8"  # BLACK RIGHT-POINTING SMALL TRIANGLE, before a forced token
-MONO_WASH = "#b9bdc4"  # the grey that mono mode washes with
+PART_MARK = "\u2260"  # NOT EQUAL TO: this pane's text leaves the compared pane's here
+FORK_MARK = "\u21b1"  # UPWARDS ARROW WITH TIP RIGHT: this pane was forked here
+EDIT_MARK = "\u0394"  # GREEK CAPITAL DELTA: the recipe changed from here on
+
+
+@dataclass(frozen=True)
+class Palette:
+    """The colours of one depth: backgrounds, the ink ramp, the chips, as #rrggbb."""
+
+    background: str  # a pane's background as the terminal shows it
+    alternate: str  # every other token
+    ink: tuple[str, str, str]  # one per final band, most likely first
+    forced: str  # the chip behind a forced token
+    dark_text: str  # text on the chip
+    mark: str  # annotation marks (parting, fork, edit)
+
+
+# xterm's 256 colours: 231 = #ffffff, 117 = #87d7ff, 74 = #5fafd7 (cube steps 0, 95, 135,
+# 175, 215, 255), 233 = #121212, 235 = #262626, 36 = #00af87, 232 = #080808, 180 = #d7af87.
+# The 16 standard colours as Rich numbers them (rich._palettes.STANDARD_PALETTE, the VGA
+# values): 7 white #aaaaaa, 14 bright cyan #55ffff, 6 cyan #00aaaa, 0 black, 10 bright
+# green #55ff55, 11 bright yellow #ffff55. The terminal shows its own shades for these
+# slots; the slots are what stay apart.
+PALETTES: dict[Depth, Palette] = {
+    "truecolor": Palette(PANE_BACKGROUND, "#22252b", (NEUTRAL, "#8fcbef", "#3d9be0"),
+                         FORCED_COLOUR, DARK_TEXT, "#e0b878"),
+    "256": Palette("#121212", "#262626", ("#ffffff", "#87d7ff", "#5fafd7"),
+                   "#00af87", "#080808", "#d7af87"),
+    "16": Palette("#000000", "#000000", ("#aaaaaa", "#55ffff", "#00aaaa"),
+                  "#55ff55", "#000000", "#ffff55"),
+    "mono": Palette(PANE_BACKGROUND, "#22252b", ("#dcdcdc", "#ababab", "#8f8f8f"),
+                    "#ffffff", DARK_TEXT, "#ffffff"),
+}
 
 
 @dataclass(frozen=True)
 class RankBand:
     """Raw ranks `low..high` (high None = no upper end); 1 = the model's first choice."""
 
-    label: str
+    name: str  # what the band means, for legends
+    label: str  # the ranks, short
     low: int
     high: int | None
-    colour: str  # hex text colour
-    mono: tuple[str, ...]  # text attributes without colour: "italic", "underline", "bold"
+    underline: bool
+    bold: bool
 
 
 @dataclass(frozen=True)
 class FinalBand:
-    """Final probabilities in [low, the previous band's low) and the wash behind them."""
+    """Final probabilities in [low, the previous band's low), and their step of the ramp."""
 
+    name: str
     label: str
     low: float
-    wash: float  # 0 = no wash, 1 = the band colour itself (a highlighter, dark text)
+    italic: bool
 
 
 RANK_BANDS: tuple[RankBand, ...] = (
-    RankBand("1", 1, 1, NEUTRAL, ()),
-    RankBand("2-3", 2, 3, OKABE_ITO["sky_blue"], ("italic",)),
-    RankBand("4-10", 4, 10, OKABE_ITO["yellow"], ("underline",)),
-    RankBand("11-50", 11, 50, OKABE_ITO["orange"], ("bold",)),
-    RankBand(">50", 51, None, OKABE_ITO["reddish_purple"], ("bold", "underline")),
+    RankBand("the model's own pick", "1", 1, 1, False, False),
+    RankBand("a plausible alternative", "2-10", 2, 10, True, False),
+    RankBand("a long shot the recipe let in", ">10", 11, None, True, True),
 )
 
 FINAL_BANDS: tuple[FinalBand, ...] = (
-    FinalBand(">=50%", 0.5, 0.0),
-    FinalBand("5-50%", 0.05, 0.16),
-    FinalBand("<5%", 0.0, 1.0),
+    FinalBand("likely under the recipe", ">=50%", 0.5, False),
+    FinalBand("an open draw", "5-50%", 0.05, False),
+    FinalBand("a lucky draw", "<5%", 0.0, True),
 )
 
 
 @dataclass(frozen=True)
 class TokenColours:
-    """How one token is drawn in colour: text and background as #rrggbb, and weight."""
+    """How one token is drawn: text and background as #rrggbb, and its shape."""
 
     foreground: str
     background: str
     bold: bool
+    underline: bool
+    italic: bool
     rank_band: int  # index into RANK_BANDS
     final_band: int  # index into FINAL_BANDS
 
@@ -116,48 +159,55 @@ def final_band(prob: float) -> int:
 
 def blend(colour: str, base: str, amount: float) -> str:
     """`amount` of `colour` over `base` (0 = base, 1 = colour), as #rrggbb."""
-    a, b = _rgb(colour), _rgb(base)
+    a, b = rgb(colour), rgb(base)
     mix = [round(y + (x - y) * amount) for x, y in zip(a, b)]
     return "#{:02x}{:02x}{:02x}".format(*mix)
 
 
-def _rgb(hex_colour: str) -> tuple[int, int, int]:
+def rgb(hex_colour: str) -> tuple[int, int, int]:
+    """#rrggbb as three 0-255 integers."""
     h = hex_colour.lstrip("#")
     if len(h) != 6:
         raise ValueError(f"colour must be #rrggbb, got {hex_colour!r}")
     return int(h[0:2], 16), int(h[2:4], 16), int(h[4:6], 16)
 
 
+_rgb = rgb  # the old private name, kept for callers that read it
+
+
 def token_colours(rank: int, final_prob: float, *, alternate: bool = False,
-                  forced: bool = False, mono: bool = False) -> TokenColours:
-    """The colours of one emitted token; `alternate` for every other token."""
+                  forced: bool = False, depth: Depth = "truecolor") -> TokenColours:
+    """The look of one emitted token; `alternate` for every other token."""
     return band_colours(rank_band(rank), final_band(min(final_prob, 1.0)),
-                        alternate=alternate, forced=forced, mono=mono)
+                        alternate=alternate, forced=forced, depth=depth)
 
 
 @lru_cache(maxsize=256)
 def band_colours(rank_i: int, final_i: int, *, alternate: bool = False, forced: bool = False,
-                 mono: bool = False) -> TokenColours:
-    """The colours for a rank band and a final band (indices into the two band tables)."""
-    band, wash = RANK_BANDS[rank_i], FINAL_BANDS[final_i].wash
-    hue = MONO_WASH if mono else band.colour
-    base = ALTERNATE_BACKGROUND if alternate else PANE_BACKGROUND
-    if forced:
-        mark = "#ffffff" if mono else FORCED_COLOUR
-        return TokenColours(DARK_TEXT, blend(mark, base, 0.85 if alternate else 1.0), True,
+                 depth: Depth = "truecolor") -> TokenColours:
+    """The look for a rank band and a final band (indices into the two band tables)."""
+    pal = PALETTES[depth]
+    rank, final = RANK_BANDS[rank_i], FINAL_BANDS[final_i]
+    if forced:  # the chip: dark text on bluish green; the shape still tells the rank
+        return TokenColours(pal.dark_text, pal.forced, rank.bold, rank.underline, final.italic,
                             rank_i, final_i)
-    if wash >= 1.0:  # highlighter: the band colour behind dark text
-        return TokenColours(DARK_TEXT, blend(hue, base, 0.82 if alternate else 1.0), False,
-                            rank_i, final_i)
-    # a wash alternates by its strength (a lighter base would cost contrast)
-    bg = blend(hue, PANE_BACKGROUND, wash - (0.06 if alternate else 0.0)) if wash else base
-    return TokenColours(NEUTRAL if mono else band.colour, bg, False, rank_i, final_i)
+    return TokenColours(pal.ink[final_i], pal.alternate if alternate else pal.background,
+                        rank.bold, rank.underline, final.italic, rank_i, final_i)
+
+
+def depth_of(color_system: str | None, mono: bool = False) -> Depth:
+    """The depth for a terminal's colour system (Rich's names: truecolor, 256, standard,
+    windows; None for no colour)."""
+    if mono or color_system is None:
+        return "mono"
+    return {"truecolor": "truecolor", "256": "256"}.get(color_system, "16")  # type: ignore[return-value]
 
 
 LEGEND_TEXT = (
-    "Text colour = the token's rank in the model's raw distribution "
-    "(1, 2-3, 4-10, 11-50, >50: grey, sky blue, yellow, orange, reddish purple). "
-    "Background = its probability under the pane's final distribution: none at >= 50%, "
-    "a faint wash at 5-50%, a full highlighter below 5%. "
-    f"Bluish green with {FORCED_MARK} = a token chosen by hand."
+    "Shape = the token's rank under the model: plain for the model's own pick (rank 1), "
+    "underlined for a plausible alternative (2-10), bold and underlined for a long shot "
+    "the recipe let in (>10). Ink = its probability under the pane's final distribution, "
+    "one hue from pale to deep: the plain pale ink at >= 50%, pale sky blue at 5-50%, "
+    "deep sky blue in italics below 5%. "
+    f"A bluish green chip with {FORCED_MARK} = a token chosen by hand."
 )

@@ -22,6 +22,7 @@ from tui.app.recipe_dialog import RecipeChoice, RecipeDialog
 from tui.app.safe_text import shown_line
 from tui.app.save_dialog import SaveDialog, default_path
 from tui.app.token_pane import TokenPane
+from tui.session.parting import fork_name
 
 if TYPE_CHECKING:
     from tui.app.app import LogitforkApp
@@ -172,7 +173,8 @@ class SessionActions:
                 self.submit("fork", lambda e: e.fork(src.id, choice.recipe, choice.name))
 
         title = f"Fork {shown_line(src.name)} at step {len(src.records)}: the new pane's recipe"
-        self.push_screen(RecipeDialog(title, src.recipe, name=f"{src.name} fork"), done)
+        name = fork_name(src.name, [p.name for p in self.view.panes])  # greedy/1, greedy/1.1
+        self.push_screen(RecipeDialog(title, src.recipe, name=name), done)
 
     def action_edit(self: "LogitforkApp") -> None:
         pane = self.focused_pane()

@@ -23,7 +23,7 @@ from textual.message import Message
 from textual.worker import get_current_worker
 
 from tui.app.actions import CHANGES, SessionActions
-from tui.app.colouring import Scheme
+from tui.app.colouring import Scheme, console_depth
 from tui.app.key_bar import KeyBar
 from tui.app.legend import Legend
 from tui.app.loading_panel import LoadingPanel
@@ -45,6 +45,7 @@ from tui.workbench.stepper import (
 )
 
 if TYPE_CHECKING:
+    from tui.token_style import Depth
     from tui.transcripts.recovery_log import RecoveryLog
     from tui.transcripts.recovery_reader import RecoverySummary
 
@@ -112,13 +113,16 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
             self.error = error
 
     def __init__(self, source: SessionSource | SessionLoader, *, mono: bool = False,
-                 save_folder: Path | None = None, recovery: bool = False) -> None:
+                 save_folder: Path | None = None, recovery: bool = False,
+                 depth: Depth | None = None) -> None:
         super().__init__()
         self.keep_recovery = recovery  # keep a crash-recovery log, offer leftover ones
         self.recovery: RecoveryLog | None = None
         self.recovery_told = False  # the log's failure was told
         self.recovery_offered: RecoverySummary | None = None
-        self.scheme = Scheme(mono)
+        # the terminal's colour depth, as Rich found it (tests and --mono may pin it)
+        no_colour = mono or self.no_color
+        self.scheme = Scheme("mono" if no_colour else depth or console_depth(self.console))
         if mono and not self.no_color:
             self._filters.append(Monochrome())  # --mono: no colour anywhere, as NO_COLOR
         self._loader = source if isinstance(source, SessionLoader) else None
@@ -352,17 +356,21 @@ def _steps_left(source: SessionSource | None, view: SessionView | None) -> int |
 def make_app(scenario: str | None = None, *, model: str | None = None, seed: int | None = None,
              mono: bool = False, dtype: str = "auto", allow_pickle: bool = False,
              max_new_tokens: int | None = None, source: SessionSource | None = None,
-             save_folder: Path | None = None, recovery: bool = False) -> LogitforkApp:
+             save_folder: Path | None = None, recovery: bool = False,
+             depth: Depth | None = None) -> LogitforkApp:
     """The app on a scenario (by name or path; the default one when None), or on `source`.
 
+    `depth` pins the colour depth (tests); by default it is the terminal's.
     With `recovery`, a live session keeps a crash-recovery log and the app offers to
     reopen one left by an earlier session (see `recovery_offer.py`).
     Scenario errors raise `UserError` here, before any screen is drawn.
     """
     if source is not None:
-        return LogitforkApp(source, mono=mono, save_folder=save_folder, recovery=recovery)
+        return LogitforkApp(source, mono=mono, save_folder=save_folder, recovery=recovery,
+                            depth=depth)
     from tui.session.scenario import find_scenario, load_scenario
 
     loader = SessionLoader(load_scenario(find_scenario(scenario)), model=model, seed=seed,
                            dtype=dtype, allow_pickle=allow_pickle, max_new_tokens=max_new_tokens)
-    return LogitforkApp(loader, mono=mono, save_folder=save_folder, recovery=recovery)
+    return LogitforkApp(loader, mono=mono, save_folder=save_folder, recovery=recovery,
+                        depth=depth)

@@ -11,12 +11,16 @@ from textual.screen import ModalScreen
 from textual.widgets import Static
 
 from tui.app.colouring import FINAL_BANDS, FORCED_MARK, RANK_BANDS, Scheme
+from tui.token_style import EDIT_MARK, FORK_MARK, PART_MARK
 
 CAUTION = ("Generated text is raw model output: it can be false, biased or offensive, and it "
            "is not filtered. Check any setting chosen here on your own data before use.")
 
 INSPECT_KEYS = (
-    ("\u2191 \u2193", "choose a row of the top-20 table"),
+    ("\u2191 \u2193", "choose a row of the table (it starts on the chosen token)"),
+    ("m", "100 more ranks of the distribution (a live session: the whole vocabulary)"),
+    ("k", "the whole kept set, in raw order (again: back to the top ranks)"),
+    ("/", "find tokens by their text; escape leaves the search"),
     ("enter", "force the chosen row's token at this step (asks first): the session rewinds "
               "there and the pane goes on from that token"),
     ("escape", "back to the panes"),
@@ -34,21 +38,30 @@ def keys_table(rows: list[tuple[str, str]]) -> Table:
 
 
 def scheme_text(scheme: Scheme) -> Text:
+    """The legend, then each band in the style its tokens get, with what it means."""
     text = Text()
-    text.append_text(scheme.legend())
-    text.append("\n\n")
-    kind = "text style" if scheme.mono else "colour of the text"
-    text.append(f"The {kind} is the token's rank in the raw model distribution "
-                "(1 = the model's first choice): ")
-    text.append(", ".join(b.label for b in RANK_BANDS) + ".\n")
-    text.append("The background is the token's probability under the pane's final, truncated "
-                "distribution (the one it was drawn from): ")
-    text.append(", ".join(b.label for b in FINAL_BANDS))
-    text.append(" (none, a faint wash, a highlighter: the less sure the draw, the louder).\n")
+    text.append_text(scheme.legend(200))
+    text.append("\n\nShape = the token's rank in the raw model distribution: ")
+    for i, band in enumerate(RANK_BANDS):
+        text.append(f"{band.name} ({band.label})", scheme.band_style(i, 0))
+        text.append(", " if i < len(RANK_BANDS) - 1 else ".\n")
+    text.append("Ink = its probability under the pane's final, truncated distribution (the "
+                "one it was drawn from), one hue from pale to deep: ")
+    for j, band in enumerate(FINAL_BANDS):
+        text.append(f"{band.name} ({band.label})", scheme.band_style(0, j))
+        text.append(", " if j < len(FINAL_BANDS) - 1 else ".\n")
     text.append("Neighbouring tokens alternate between two close shades, so token boundaries "
                 "show. ")
     text.append(FORCED_MARK, scheme.marker_style())
-    text.append(" marks a token forced from the inspect view.\n")
+    text.append(" marks a token forced from the inspect view; ")
+    mark = scheme.annotation_style()
+    text.append(PART_MARK, mark)
+    text.append(" where a pane's text leaves the pane it is compared with (its fork source, "
+                "a twin with the same recipe, or the first pane); ")
+    text.append(FORK_MARK, mark)
+    text.append(" the step a fork starts from; ")
+    text.append(EDIT_MARK, mark)
+    text.append(" a recipe change.\n")
     text.append("Status line: step, kept-set size and entropy H (nats) of the final "
                 "distribution at the last step shown, mean log-probability (raw) of the "
                 "chosen tokens, and why the pane stopped.")

@@ -41,8 +41,9 @@ def bar_text(state: BarState) -> Text:
     else:
         text.append(" \u2016 paused ", style="bold #0b0c0e on #F0E442")
     text.append(" ")
-    if state.busy:
-        text.append(f"{state.busy}\u2026 ", style="italic")
+    if state.busy:  # a chip of its own, apart from the model's name
+        text.append(f" {state.busy}\u2026 ", style="italic #0b0c0e on #8fcbef")
+        text.append("  ")
     if state.model:
         text.append(shown_line(state.model), style="bold")
     if state.dtype:

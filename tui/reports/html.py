@@ -47,19 +47,24 @@ summary { cursor: pointer; font-weight: 600; } img.plot { max-width: 100%%; }
 """
 
 
+def _css_look(c: ts.TokenColours) -> str:
+    return (f"color: {c.foreground}; background: {c.background};"
+            + (" font-weight: 700;" if c.bold else "")
+            + (" text-decoration: underline;" if c.underline else "")
+            + (" font-style: italic;" if c.italic else ""))
+
+
 def _token_css() -> str:
     """One class per drawn combination: rank band, final band, alternate, forced."""
     rules = []
-    for ri, band in enumerate(ts.RANK_BANDS):
-        for fi, fband in enumerate(ts.FINAL_BANDS):
+    for ri in range(len(ts.RANK_BANDS)):
+        for fi in range(len(ts.FINAL_BANDS)):
             for alt in (0, 1):
-                c = ts.token_colours(band.low, fband.low, alternate=bool(alt))
-                rules.append(f".t{ri}{fi}{alt} {{ color: {c.foreground}; "
-                             f"background: {c.background}; }}")
+                c = ts.band_colours(ri, fi, alternate=bool(alt))
+                rules.append(f".t{ri}{fi}{alt} {{ {_css_look(c)} }}")
     for alt in (0, 1):
         c = ts.token_colours(1, 1.0, alternate=bool(alt), forced=True)
-        rules.append(f".tf{alt} {{ color: {c.foreground}; background: {c.background}; "
-                     "font-weight: 700; }")
+        rules.append(f".tf{alt} {{ {_css_look(c)} font-weight: 700; }}")
     rules.append(f".mark {{ color: {ts.FORCED_COLOUR}; font-weight: 700; }}")
     return "\n".join(rules)
 
@@ -80,13 +85,13 @@ def _token_span(row: Row, alternate: bool, pane_name: str) -> str:
 
 
 def legend_html() -> str:
-    """The app's legend line, in the same colours."""
-    parts = ['<b>rank</b> ']
+    """The app's legend line, in the same looks, each band with what it means."""
+    parts = ['<b>model rank</b> ']
     for ri, band in enumerate(ts.RANK_BANDS):
-        parts.append(f'<span class="t{ri}00">{escape(band.label)}</span> ')
-    parts.append("<b>│ final p</b> ")
+        parts.append(f'<span class="t{ri}00">{escape(band.name)} {escape(band.label)}</span> ')
+    parts.append("<b>│ pane p</b> ")
     for fi, fband in enumerate(ts.FINAL_BANDS):
-        parts.append(f'<span class="t1{fi}0">{escape(fband.label)}</span> ')
+        parts.append(f'<span class="t0{fi}0">{escape(fband.name)} {escape(fband.label)}</span> ')
     parts.append(f'<b>│</b> <span class="mark">{ts.FORCED_MARK}</span>'
                  '<span class="tf0">forced</span>')
     return ('<div class="legend">' + "".join(parts) + "</div>"

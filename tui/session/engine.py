@@ -384,6 +384,10 @@ class Engine:
             _recipe, sampler = pane.samplers[step]
             return sampler.trace(logits, self.history(pane_id, step))
 
+    def token_text(self, token_id: int) -> str:
+        """One token decoded on its own (cached), e.g. for searching a whole distribution."""
+        return self._text_of(token_id)
+
     # ----- helpers --------------------------------------------------------------------
 
     def _new_pane(self, name: str, recipe: Recipe, seed: int | None,

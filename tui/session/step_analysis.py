@@ -63,15 +63,15 @@ def top_rows(record: StepRecord, trace: Sequence[StageResult] | None = None) -> 
     cum = 0.0
     for i, tok in enumerate(record.top):
         cum += tok.raw_prob
-        rows.append(_row(i + 1, tok.token_id, tok.text, tok.raw_prob, tok.final_prob, cum,
+        rows.append(top_row(i + 1, tok.token_id, tok.text, tok.raw_prob, tok.final_prob, cum,
                          tok.token_id == record.token_id, trace))
     if all(r.token_id != record.token_id for r in rows):
-        rows.append(_row(record.rank, record.token_id, record.text, record.raw_prob,
+        rows.append(top_row(record.rank, record.token_id, record.text, record.raw_prob,
                          record.final_prob, None, True, trace))
     return tuple(rows)
 
 
-def _row(rank: int, token_id: int, text: str, raw: float, final: float, cum: float | None,
+def top_row(rank: int, token_id: int, text: str, raw: float, final: float, cum: float | None,
          chosen: bool, trace: Sequence[StageResult] | None) -> TopRow:
     kept = final > 0
     stage = None

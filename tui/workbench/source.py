@@ -94,6 +94,10 @@ class LiveSource:
         """The pane's recipe stage by stage at the step, in the sampler state of then."""
         return self.live_engine.trace_at(pane_id, step)
 
+    def token_text(self, token_id: int) -> str:
+        """One token decoded on its own (the inspect view's search over every token)."""
+        return self.live_engine.token_text(token_id)
+
     def transcript_lines(self, view: SessionView) -> Iterator[str]:
         from tui.transcripts.format import lines
 
