@@ -225,13 +225,14 @@ def test_a_killed_driver_resumes_and_a_killed_worker_costs_only_its_chunk(
             killed.append((chunk, pid))
 
     monkeypatch.setattr(WorkerPool, "on_dispatch", staticmethod(kill_the_first))
-    rc, _, err = run("sweep", str(sweep), "--out", str(out), "--resamples", RESAMPLES,
+    rc, stdout, err = run("sweep", str(sweep), "--out", str(out), "--resamples", RESAMPLES,
                      "--ray", cluster, "--workers", "2")
     assert rc == 0, err
     assert f"{len(written)} of 4 chunks already written" in err
     chunk, pid = killed[0]
     assert f"(pid {pid}) was lost while it ran chunk {chunk}" in err
     assert f"chunk {chunk} runs again" in err
+    assert stdout == on_cluster[1]  # the tables only: no word from Ray on stdout
     # the same folder as the undisturbed run, bit for bit (the same threads per worker)
     assert chunks_of(out) == chunks_of(on_cluster[0])
     assert (out / "results.csv").read_bytes() == (on_cluster[0] / "results.csv").read_bytes()
@@ -340,3 +341,21 @@ def test_no_command_but_the_cluster_sweep_loads_ray(base, sweep):
                           env={**os.environ, "PYTHONPATH": str(ROOT)}, timeout=300)
     assert done.returncode == 0, done.stderr
     assert done.stdout.strip().splitlines()[-1] == "False 0 0 True"
+
+
+def test_the_progress_line_counts_chunks_that_ran_on_workers():
+    # chunks that come back whole: their tokens and budget count at once, and a note
+    # (a lost worker) gets a line of its own (common practice, no source: log lines
+    # between progress lines)
+    from tui.sweeps.progress import SweepProgress
+
+    now = [0.0]
+    out = io.StringIO()
+    bar = SweepProgress(8, 10, chunks=2, stream=out, log_every=100.0, clock=lambda: now[0])
+    now[0] = 4.0
+    bar.chunk_done(4, tokens=30)
+    assert bar.fraction() == pytest.approx(0.5) and bar.tokens == 30
+    assert "chunks 1/2" in bar.line() and "7.5 tok/s" in bar.line() and "ETA 4s" in bar.line()
+    bar.note("worker w (pid 1) was lost while it ran chunk 1; chunk 1 runs again")
+    lines = out.getvalue().splitlines()
+    assert lines[-2].startswith("worker w (pid 1) was lost") and "chunks 1/2" in lines[-1]

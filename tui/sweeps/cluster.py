@@ -189,11 +189,19 @@ def connect(address: str, wanted_cpus: int = 1) -> Iterator[Connection]:
     except Exception as exc:  # noqa: BLE001 - Ray raises many kinds; each becomes one line
         where = "start a local cluster" if local else f"connect to the cluster at {address}"
         raise UserError(f"--ray: cannot {where}: {first_line(exc)}") from None
+    # Ray 2.60 prints the cluster's error messages (a worker's death, with its advice) to
+    # the driver's stdout, where the tables go; the pool says what happened in one line.
+    # (Only a private switch exists; `ray.util.rpdb` uses it the same way.)
+    printing = getattr(ray._private.worker, "_worker_logs_enabled", None)
+    if printing is not None:
+        ray._private.worker._worker_logs_enabled = False
     try:
         cpus = int(ray.cluster_resources().get("CPU", 0))
         yield Connection(address, cpus, local)
     finally:
         ray.shutdown()
+        if printing is not None:
+            ray._private.worker._worker_logs_enabled = printing
 
 
 class WorkerPool:
