@@ -178,7 +178,9 @@ def connect(address: str, wanted_cpus: int = 1) -> Iterator[Connection]:
     local = address == LOCAL
     if local:
         os.environ.setdefault("RAY_AUTH_MODE", "token")  # Ray's default, said so: no warning
-        options: dict[str, Any] = {"num_cpus": local_cpus(wanted_cpus), "include_dashboard": False}
+        # address "local": a new cluster even where another one runs (`ray start`, RAY_ADDRESS)
+        options: dict[str, Any] = {"address": "local", "num_cpus": local_cpus(wanted_cpus),
+                                   "include_dashboard": False}
     else:
         _refuse_unreachable(address)
         options = {"address": address}
