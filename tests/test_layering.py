@@ -44,6 +44,11 @@ DISPLAY_LIBRARIES = {"textual": {"app"}, "rich": {"app", "sweeps.report"},
                      "matplotlib": {"reports.gather", "sweeps.report"},
                      "plotext": {"sweeps.report"}}
 MAX_LOOSE = 8
+# Ray: imported by the cluster module only, which only the sweep command's --ray branch
+# and the benchmark's cluster row reach (so no other command ever loads Ray).
+CLUSTER_LIBRARY = "ray"
+CLUSTER_MODULE = "tui.sweeps.cluster"
+CLUSTER_USERS = {"tui.commands.sweep", "tui.bench.sweep"}
 
 
 def module_name(path: Path) -> str:
@@ -187,3 +192,15 @@ def test_the_recipe_command_does_not_load_torch():
             "print('torch' in sys.modules, rc)\n")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip().splitlines()[-1] == "False 0"
+
+
+def test_ray_only_in_the_cluster_module_which_only_its_users_reach():
+    ray_importers, cluster_importers = set(), set()
+    for path in PACKAGE.rglob("*.py"):
+        for target in imports_of(path):
+            if target.split(".")[0] == CLUSTER_LIBRARY:
+                ray_importers.add(module_name(path))
+            if target == CLUSTER_MODULE or target.startswith(CLUSTER_MODULE + "."):
+                cluster_importers.add(module_name(path))
+    assert ray_importers == {CLUSTER_MODULE}
+    assert cluster_importers == CLUSTER_USERS

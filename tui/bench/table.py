@@ -8,9 +8,10 @@ numbers measured in the same run with the variants interleaved (timings on this 
 MISS beside it. Sections: parity of the lean path on the real model, decode step time
 (1/2/4/8 panes, context ~50 and ~400), prefill, matmul layouts tried, threads, the
 4-recipe run against transformers' generate(), the recipe math's share of a step,
-bfloat16's deviation and speed, the sweep's batching gain, start-up time (cold
-only with --cold: ~40 s), and models of 1B llama and 0.5B qwen2 shape against the
-bandwidth floor (`tui.bench.own_models`; --no-own-models leaves them out).
+bfloat16's deviation and speed, the sweep's batching gain, the sweep in one process
+against a local Ray cluster of 1 and 2 workers, start-up time (cold only with --cold:
+~40 s), and models of 1B llama and 0.5B qwen2 shape against the bandwidth floor
+(`tui.bench.own_models`; --no-own-models leaves them out).
 """
 
 from __future__ import annotations
@@ -49,6 +50,19 @@ def sweep_rows(lm: object, quick: bool) -> list[Row]:
                 f"{out['speedup']:.1f}x", f"{out['tokens_per_s_batched']:.0f} vs "
                 f"{out['tokens_per_s_single']:.1f} tokens/s, {out['forward']}",
                 f">= {out['target_speedup']:g}", "PASS" if out["meets_target"] else "MISS")]
+
+
+def cluster_rows(model: str, quick: bool) -> list[Row]:
+    """The same sweep in one process and on a local Ray cluster of 1 and 2 workers."""
+    from tui.bench.sweep import bench_cluster
+
+    out = bench_cluster(model, new_tokens=8 if quick else 16)
+    rates = " / ".join(f"{out['ray'][n]:.0f}" for n in sorted(out["ray"]))
+    threads = ", ".join(f"{n} worker(s) x {t} thread(s)" for n, t in sorted(out["threads"].items()))
+    return [Row("sweep", "sweep tokens/s: one process | ray, 1 / 2 local workers",
+                f"{out['one_process']:.0f} | {rates}",
+                f"{out['tokens']} tokens in {out['chunks']} chunks; one process "
+                f"{out['one_process_threads']} thread(s); {threads}; model loads not timed")]
 
 
 def main(argv: Sequence[str] | None = None) -> int:
@@ -108,6 +122,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     rows += precision.bf16_rows(lm.model, runners["lean"], prompt, 50, steps)
     section("sweep")
     rows += sweep_rows(lm, quick)
+    section("sweep on a local Ray cluster")
+    rows += cluster_rows(args.model or DEFAULT_MODEL, quick)
     section("start")
     rows += runs.start_rows(args.cold, args.model)
     if not args.no_own_models:

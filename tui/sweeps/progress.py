@@ -51,9 +51,14 @@ class SweepProgress:
         self._ended_rows_steps += ended * (self.max_new_tokens - self._steps_in_chunk)
         self._maybe_draw()
 
-    def chunk_done(self, rows: int) -> None:
-        """A chunk of `rows` rows was written: its whole budget counts as done."""
+    def chunk_done(self, rows: int, tokens: int | None = None) -> None:
+        """A chunk of `rows` rows was written: its whole budget counts as done.
+
+        `tokens`: the chunk's tokens, when it ran elsewhere (on a cluster worker) and
+        its steps were not counted here.
+        """
         self._done += rows * self.max_new_tokens
+        self.tokens += tokens or 0
         self._live_steps = self._ended_rows_steps = self._steps_in_chunk = 0
         self.chunks_done += 1
         self._maybe_draw()
@@ -71,6 +76,13 @@ class SweepProgress:
         bar = "#" * filled + "." * (self.width - filled)
         return (f"{self.title} [{bar}] {100 * frac:3.0f}%  chunks {self.chunks_done}/{self.chunks}"
                 f"  {self.tokens} tokens  {rate:.1f} tok/s  ETA {format_duration(eta)}")
+
+    def note(self, text: str) -> None:
+        """A line of its own (a lost worker, say); the progress line is drawn again below it."""
+        self.stream.write(("\r\x1b[K" if self.interactive else "") + text + "\n")
+        self.stream.flush()
+        self._last_draw = -float("inf")
+        self._maybe_draw()
 
     def finish(self) -> None:
         """Draw the final state and end the line."""
