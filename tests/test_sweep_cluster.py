@@ -350,12 +350,14 @@ def test_the_progress_line_counts_chunks_that_ran_on_workers():
     from tui.sweeps.progress import SweepProgress
 
     now = [0.0]
-    out = io.StringIO()
-    bar = SweepProgress(8, 10, chunks=2, stream=out, log_every=100.0, clock=lambda: now[0])
+    events: list = []
+    said: list[str] = []
+    bar = SweepProgress(8, 10, chunks=2, report=events.append, say=said.append,
+                        clock=lambda: now[0])
     now[0] = 4.0
     bar.chunk_done(4, tokens=30)
     assert bar.fraction() == pytest.approx(0.5) and bar.tokens == 30
-    assert "chunks 1/2" in bar.line() and "7.5 tok/s" in bar.line() and "ETA 4s" in bar.line()
+    note = events[-1].note
+    assert "chunks 1/2" in note and "7.5 tok/s" in note and "ETA 4s" in note
     bar.note("worker w (pid 1) was lost while it ran chunk 1; chunk 1 runs again")
-    lines = out.getvalue().splitlines()
-    assert lines[-2].startswith("worker w (pid 1) was lost") and "chunks 1/2" in lines[-1]
+    assert said == ["worker w (pid 1) was lost while it ran chunk 1; chunk 1 runs again"]

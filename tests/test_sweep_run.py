@@ -248,18 +248,35 @@ def test_command_line_mistakes_name_the_option(tmp_path, tiny_model_dir, capsys)
 
 
 def test_progress_line_counts_row_steps_and_estimates_the_time_left():
+    # worked example (common practice, no source: linear extrapolation of the time left)
     now = [0.0]
-    out = io.StringIO()
-    bar = SweepProgress(4, 10, chunks=2, stream=out, log_every=100.0, clock=lambda: now[0])
+    events: list = []
+    bar = SweepProgress(4, 10, chunks=2, report=events.append, clock=lambda: now[0])
     now[0] = 5.0
     for _ in range(5):
         bar.step(2, 0)
     bar.step(2, 2)  # both rows end at step 6: their 4 unused steps count as done
     bar.chunk_done(2)
     assert bar.fraction() == pytest.approx(0.5)  # 20 of 40 row-steps
-    assert "ETA 5s" in bar.line()  # 5 s for half: 5 s more (linear extrapolation)
-    bar.finish()
-    lines = out.getvalue().splitlines()
-    assert len(lines) == 2 and "\r" not in out.getvalue()  # not a terminal: plain lines
-    assert "chunks 1/2" in lines[-1] and "12 tokens" in lines[-1]
+    last = events[-1]
+    assert (last.done, last.total, last.fraction) == (20, 40, 0.5)
+    assert "ETA 5s" in last.note  # 5 s for half: 5 s more
+    assert "chunks 1/2" in last.note and "12 tokens" in last.note
+    assert len(events) == 7  # one event per step and per written chunk
     assert [format_duration(s) for s in (45, 185, 7620)] == ["45s", "3m05s", "2h07m"]
+
+
+def test_the_plain_display_writes_a_line_now_and_then_and_the_last_one():
+    # a log (not a terminal): the first event, then nothing until log_every has passed,
+    # then the finished task's line (ProgressDisplay, commands layer)
+    from tui.commands.progress_display import ProgressDisplay
+    from tui.progress import ProgressEvent
+
+    out = io.StringIO()
+    with ProgressDisplay(out, log_every=3600) as display:
+        for done in range(1, 11):
+            display(ProgressEvent("sweep s.toml", done, 10, "", f"chunks {done}/10"))
+        display.say("a note of its own")
+    lines = out.getvalue().splitlines()
+    assert lines == [" 10%  sweep s.toml  chunks 1/10", "100%  sweep s.toml  chunks 10/10",
+                     "a note of its own"]

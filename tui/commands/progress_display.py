@@ -59,6 +59,14 @@ class ProgressDisplay:
                 self._write_line(event)
                 self._logged[event.task] = now
 
+    def say(self, text: str) -> None:
+        """A message line of its own (above the bars on a terminal)."""
+        if self._bars is not None:
+            self._bars.console.print(text, markup=False, highlight=False)
+        else:
+            self.stream.write(text + "\n")
+            self.stream.flush()
+
     def _write_line(self, event: ProgressEvent) -> None:
         frac = event.fraction
         percent = "" if frac is None else f"{100 * frac:3.0f}%  "

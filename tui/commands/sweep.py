@@ -65,6 +65,7 @@ def _run_here(args: argparse.Namespace, spec: SweepSpec, prompts: tuple[Prompt, 
     from tui.errors import UserError
     from tui.sweeps.folder import SweepFolder, package_versions
     from tui.sweeps.plan import build_job, check_batch
+    from tui.commands.progress_display import ProgressDisplay
     from tui.sweeps.progress import SweepProgress
     from tui.sweeps.runner import SweepRunner
 
@@ -83,14 +84,13 @@ def _run_here(args: argparse.Namespace, spec: SweepSpec, prompts: tuple[Prompt, 
     if todo:
         sweeper = SweepRunner(runner, lm.decode, job, eos_ids=lm.eos_ids,
                               max_context=lm.max_context)
-        progress = SweepProgress(sum(len(c.rows) for c in todo), job.max_new_tokens,
-                                 chunks=len(todo), title=f"sweep {spec.path.name}")
-        try:
+        with ProgressDisplay() as display:  # its last line stays, also when interrupted
+            progress = SweepProgress(sum(len(c.rows) for c in todo), job.max_new_tokens,
+                                     chunks=len(todo), report=display, say=display.say,
+                                     title=f"sweep {spec.path.name}")
             for chunk in todo:
                 folder.append_chunk(chunk.index, sweeper.run_chunk(chunk, on_step=progress.step))
                 progress.chunk_done(len(chunk.rows))
-        finally:  # end the progress line, also when interrupted (written chunks stay)
-            progress.finish()
     return folder
 
 
@@ -102,6 +102,7 @@ def _run_on_cluster(args: argparse.Namespace, spec: SweepSpec, prompts: tuple[Pr
     """
     from tui.sweeps.cluster import open_pool
     from tui.sweeps.folder import SweepFolder
+    from tui.commands.progress_display import ProgressDisplay
     from tui.sweeps.progress import SweepProgress
 
     with open_pool(args.ray, args.workers, model=spec.model, allow_pickle=args.allow_pickle,
@@ -110,17 +111,16 @@ def _run_on_cluster(args: argparse.Namespace, spec: SweepSpec, prompts: tuple[Pr
         folder = SweepFolder.open_for_run(out, manifest, spec.source_text, pool.versions())
         todo = _todo(folder, pool.job, out)
         if todo:
-            progress = SweepProgress(sum(len(c.rows) for c in todo), pool.job.max_new_tokens,
-                                     chunks=len(todo), title=f"sweep {spec.path.name}")
+            with ProgressDisplay() as display:  # its last line stays, also when interrupted
+                progress = SweepProgress(sum(len(c.rows) for c in todo), pool.job.max_new_tokens,
+                                         chunks=len(todo), report=display, say=display.say,
+                                         title=f"sweep {spec.path.name}")
 
-            def write(chunk: Chunk, samples: list[SampleRecord]) -> None:
-                folder.append_chunk(chunk.index, samples)
-                progress.chunk_done(len(chunk.rows), sum(len(s.token_ids) for s in samples))
+                def write(chunk: Chunk, samples: list[SampleRecord]) -> None:
+                    folder.append_chunk(chunk.index, samples)
+                    progress.chunk_done(len(chunk.rows), sum(len(s.token_ids) for s in samples))
 
-            try:
                 pool.run(todo, write, progress.note)
-            finally:  # end the progress line, also when interrupted (written chunks stay)
-                progress.finish()
     return folder
 
 
