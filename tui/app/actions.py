@@ -306,6 +306,7 @@ class SessionActions:
             if answer == "s":
                 self.action_save(then_quit=True)
             elif answer == "d":
+                self.discarded = True  # thrown away on purpose: no recovery log either
                 self.exit()
 
         self.push_screen(ConfirmDialog("The session has unsaved steps. Save a transcript "

@@ -128,6 +128,7 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
         self.follow = True  # the cursor moves with new steps
         self.version = 0  # counts changes to the session, for "unsaved"
         self.saved_version = 0
+        self.discarded = False  # the user quit without saving: the session is thrown away
         self.busy: list[str] = []  # operations queued or under way
         self.steps_per_second: float | None = None
         self.frozen_rate: float | None = None  # tests: show this rate instead (0 = none)
