@@ -277,3 +277,25 @@ def test_the_seed_check_takes_only_ascii_digits():
     assert check_seed("0") is None and check_seed("12345") is None
     for bad in ("", "-1", "1.5", "²", "٣"):  # superscript two and Arabic-Indic three pass str.isdigit
         assert check_seed(bad) is not None  # int() of each would fail or give a negative seed
+
+
+async def test_the_fork_dialog_takes_typed_text_in_both_fields_in_tab_order(lm):
+    app = live_app(lm)
+    async with app.run_test(size=(100, 30)) as pilot:
+        await wait_until(pilot, lambda: app.stepper is not None)
+        await steps(pilot, app, 2)
+        await pilot.press("f")
+        dialog = app.screen
+        assert isinstance(dialog, RecipeDialog)
+        name = dialog.query_one("#dialog-name", Input)
+        recipe = dialog.query_one("#dialog-value", Input)
+        assert dialog.focused is name  # the first field shown is the first focused
+        await pilot.press(*" 2")
+        await pilot.press("tab")
+        assert dialog.focused is recipe
+        await pilot.press("end", *" top_k=3")
+        assert name.value == "greedy fork 2" and recipe.value == "greedy top_k=3"
+        await pilot.press("enter")
+        await wait_until(pilot, lambda: len(app.view.panes) == 5 and idle(app), what="fork")
+        fork = app.view.panes[-1]
+        assert fork.name == "greedy fork 2" and fork.recipe == "greedy top_k=3"

@@ -57,9 +57,10 @@ class InputDialog(ModalScreen[str | None]):
         return iter(())
 
     def on_mount(self) -> None:
-        field = self.query_one("#dialog-value", Input)
-        field.focus()
-        field.cursor_position = len(field.value)
+        """Focus the first field, so that Tab walks the fields in the order shown."""
+        for field in self.query(Input):
+            field.cursor_position = len(field.value)
+        self.query(Input).first().focus()
 
     @property
     def error(self) -> str:
