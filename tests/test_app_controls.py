@@ -11,6 +11,7 @@ from __future__ import annotations
 import pytest
 from textual.widgets import DataTable, Input
 
+from tui.app.confirm_dialog import ConfirmDialog
 from tui.app.input_dialog import InputDialog
 from tui.app.inspect_screen import InspectScreen
 from tui.app.recipe_dialog import RecipeDialog
@@ -219,6 +220,13 @@ async def test_draws_rewind_restart_and_quit_without_saving(lm):
         # rewind to the cursor: the session keeps what the panes show
         kept = [[r.token_id for r in p.records[:4]] for p in app.view.panes]
         await pilot.press("left", "left", "r")
+        # it asks first, saying what goes: 2 steps in each of the 4 panes
+        assert isinstance(app.screen, ConfirmDialog)
+        assert "Rewind to step 4?" in app.screen.question
+        assert "8 tokens after step 4 in 4 pane(s)" in app.screen.question
+        await pilot.press("n")  # keep: nothing changes
+        assert not isinstance(app.screen, ConfirmDialog) and app.view.step == 6
+        await pilot.press("r", "y")
         await wait_until(pilot, lambda: app.view.step == 4 and idle(app), what="the rewind")
         assert [[r.token_id for r in p.records] for p in app.view.panes] == kept
         assert app.cursor == 4
@@ -299,3 +307,38 @@ async def test_the_fork_dialog_takes_typed_text_in_both_fields_in_tab_order(lm):
         await wait_until(pilot, lambda: len(app.view.panes) == 5 and idle(app), what="fork")
         fork = app.view.panes[-1]
         assert fork.name == "greedy fork 2" and fork.recipe == "greedy top_k=3"
+
+
+async def test_fork_at_the_cursor_keeps_the_text_shown_and_catches_up(lm):
+    app = live_app(lm)
+    async with app.run_test(size=(100, 30)) as pilot:
+        await wait_until(pilot, lambda: app.stepper is not None)
+        await steps(pilot, app, 6)
+        source = app.view.panes[1]
+        from tui.app.key_bar import key_items
+
+        assert ("tab", "pane", True) in key_items(app.screen)  # the key bar says how
+        await pilot.press("tab")  # the second pane
+        assert app.focused is app.grid.panes()[1]
+        await pilot.press("left", "left")  # cursor at step 4 of 6
+        await pilot.press("f")
+        dialog = app.screen
+        assert isinstance(dialog, RecipeDialog) and "after step 4" in dialog.title_text
+        dialog.query_one("#dialog-value", Input).value = "greedy"
+        await pilot.press("enter")
+        await wait_until(pilot, lambda: len(app.view.panes) == 5 and idle(app), what="fork")
+        fork = app.view.panes[-1]
+        assert fork.origin == (source.id, 4) and len(fork.records) == 6
+        assert [r.token_id for r in fork.records[:4]] == [r.token_id for r in source.records[:4]]
+        assert all(r.rank == 1 for r in fork.records[4:])  # greedy from step 5 on
+        # the rewind question counts a forced token and a recipe edit after the cursor
+        from tui.app.actions import rewind_question
+        from dataclasses import replace
+
+        view = app.view
+        edited = replace(view.panes[0], recipe_log=((0, "greedy"), (5, "top_k=2")),
+                         records=view.panes[0].records[:5] + (
+                             replace(view.panes[0].records[5], forced=True),))
+        text = rewind_question(replace(view, panes=(edited,) + view.panes[1:]), 3)
+        assert "15 tokens after step 3 in 5 pane(s) and 1 forced token" in text
+        assert "1 recipe change made after step 3 will apply from step 4 on" in text

@@ -157,6 +157,53 @@ def test_fork_continues_from_the_source(lm):
     assert v[other].origin == (0, 5)
 
 
+def test_a_fork_before_the_present_step_is_the_fork_made_back_then(lm):
+    # Reference: the same session forked when it stood at step 3 (the present-step fork,
+    # a separate code path that copies the live row). Forking at step 3 from step 8 must
+    # give the same tokens and probabilities: the cache row is the source's, cropped.
+    ref = make(lm, ["temperature=1.0", "top_k=3"])
+    run(ref, 3)
+    ref_fork = ref.fork(0, "temperature=0.7 top_p=0.8", "back then")
+    run(ref, 5)
+    e = make(lm, ["temperature=1.0", "top_k=3"])
+    run(e, 8)
+    fork = e.fork(0, "temperature=0.7 top_p=0.8", "later", at=3)
+    got = {p.id: p for p in e.view().panes}[fork]
+    want = {p.id: p for p in ref.view().panes}[ref_fork]
+    assert got.origin == (0, 3) and len(got.records) == 8 == e.step_index
+    assert [r.token_id for r in got.records] == [r.token_id for r in want.records]
+    assert [r.final_prob for r in got.records] == pytest.approx(
+        [r.final_prob for r in want.records], abs=1e-6)
+    assert got.recipe_log == ((0, "temperature=1"), (3, "temperature=0.7 top_p=0.8"))
+    run(e, 2)  # and it steps on in the batch with the others
+    assert all(len(p.records) == 10 for p in e.view().panes)
+    assert [r.token_id for r in e.view().panes[0].records[:8]] == \
+        [r.token_id for r in ref.view().panes[0].records]
+
+
+def test_a_fork_at_step_0_or_of_a_stopped_pane_before_its_stop(lm):
+    e = make(lm, ["greedy", "temperature=1.0"])
+    run(e, 4)
+    first = e.fork(1, "greedy", at=0)  # from the prompt: greedy from the start
+    assert [r.token_id for r in {p.id: p for p in e.view().panes}[first].records] == \
+        [r.token_id for r in e.view().panes[0].records]
+    with pytest.raises(EngineError, match="no step 9"):
+        e.fork(0, "greedy", at=9)
+    # every pane stopped at the length limit: the parked row is cropped
+    ref = make(lm, ["temperature=1.0"], max_new=6)
+    run(ref, 2)
+    ref_fork = ref.fork(0, "top_k=2")
+    run(ref, 4)
+    done = make(lm, ["temperature=1.0"], max_new=6)
+    run(done, 6)
+    assert done.view().finished
+    late = done.fork(0, "top_k=2", at=2)
+    got = {p.id: p for p in done.view().panes}[late]
+    want = {p.id: p for p in ref.view().panes}[ref_fork]
+    assert [r.token_id for r in got.records] == [r.token_id for r in want.records]
+    assert got.stop == want.stop == STOP_LENGTH
+
+
 def test_recipe_change_takes_effect_from_the_next_step(lm):
     e = make(lm, ["temperature=1.5"])
     run(e, 3)

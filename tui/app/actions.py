@@ -26,6 +26,7 @@ from tui.app.token_pane import TokenPane
 if TYPE_CHECKING:
     from tui.app.app import LogitforkApp
     from tui.session.engine import Engine
+    from tui.session.views import SessionView
 
 CHANGES = frozenset({"run_pause", "one_step", "fork", "edit", "add_pane", "remove_pane",
                      "rewind", "toggle_draws", "reseed", "save"})
@@ -37,6 +38,22 @@ def check_seed(text: str) -> str | None:
     if not (text.isascii() and text.isdigit()):  # str.isdigit alone takes "²", which int() refuses
         return f"the seed must be a whole number >= 0, got {text!r}"
     return None
+
+
+def rewind_question(view: "SessionView", step: int) -> str:
+    """What a rewind to `step` throws away, asked before it does."""
+    dropped = sum(max(0, len(p.records) - step) for p in view.panes)
+    forced = sum(1 for p in view.panes for r in p.records[step:] if r.forced)
+    edits = sum(1 for p in view.panes for s, _r in p.recipe_log if s > step and
+                not (p.origin is not None and s == p.origin[1]))
+    parts = [f"{dropped} token{'s' if dropped != 1 else ''} after step {step} in "
+             f"{sum(1 for p in view.panes if len(p.records) > step)} pane(s)"]
+    if forced:
+        parts.append(f"{forced} forced token{'s' if forced != 1 else ''}")
+    what = " and ".join(parts)
+    moved = (f" {edits} recipe change{'s' if edits != 1 else ''} made after step {step} "
+             f"will apply from step {step + 1} on." if edits else "")
+    return f"Rewind to step {step}? This throws away {what}.{moved}"
 
 
 class SessionActions:
@@ -162,16 +179,20 @@ class SessionActions:
         if pane is None or pane.pane is None or self.view is None:
             return
         src = pane.pane
-        if src.stop is not None:
-            self.notify(f"{shown_line(src.name)} has stopped ({src.stop}); rewind before its "
-                        "last step to fork it", severity="warning", markup=False)
+        at = min(self.cursor, len(src.records))  # at the cursor: the text the pane shows
+        if at == len(src.records) and src.stop is not None:
+            self.notify(f"{shown_line(src.name)} has stopped ({src.stop}); move the cursor "
+                        "back (\u2190) to fork it before its last step", severity="warning",
+                        markup=False)
             return
 
         def done(choice: RecipeChoice | None) -> None:
             if choice is not None:
-                self.submit("fork", lambda e: e.fork(src.id, choice.recipe, choice.name))
+                self.submit("fork", lambda e: e.fork(src.id, choice.recipe, choice.name, at=at))
 
-        title = f"Fork {shown_line(src.name)} at step {len(src.records)}: the new pane's recipe"
+        later = (f"; it catches up to step {self.view.step}" if at < self.view.step else "")
+        title = (f"Fork {shown_line(src.name)} after step {at}: the new pane's recipe, from "
+                 f"step {at + 1} on{later}")
         self.push_screen(RecipeDialog(title, src.recipe, name=f"{src.name} fork"), done)
 
     def action_edit(self: "LogitforkApp") -> None:
@@ -227,9 +248,15 @@ class SessionActions:
             self.notify("the cursor is at the end: move it back (\u2190, home) to rewind",
                         markup=False)
             return
-        self.stepper.pause()
-        self.follow = True
-        self.submit("rewind", lambda e: e.rewind(step))
+
+        def done(answer: str | None) -> None:
+            if answer == "y" and self.stepper is not None:
+                self.stepper.pause()
+                self.follow = True
+                self.submit("rewind", lambda e: e.rewind(step))
+
+        self.push_screen(ConfirmDialog(rewind_question(self.view, step),
+                                       [("y", "rewind"), ("n", "keep")]), done)
 
     def action_toggle_draws(self: "LogitforkApp") -> None:
         if self.view is None:

@@ -71,17 +71,21 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
                 "steps)"),
         Binding("enter", "inspect", "inspect", key_display="\u23ce", tooltip="inspect the "
                 "focused pane at the cursor (or click a token)"),
-        Binding("tab", "next_pane", "next pane", tooltip="focus the next pane"),
-        Binding("shift+tab", "next_pane(-1)", "previous pane", show=False,
+        # priority: ahead of the screen's own tab (focus_next, hidden from the key bar);
+        # in a dialog the action is off, and tab moves between its fields as usual
+        Binding("tab", "next_pane", "pane", priority=True,
+                tooltip="focus the next pane (the keys act on the focused pane)"),
+        Binding("shift+tab", "next_pane(-1)", "previous pane", show=False, priority=True,
                 tooltip="focus the previous pane"),
-        Binding("f", "fork", "fork", tooltip="fork the focused pane at the present step "
-                "into a new pane, with a recipe you give"),
+        Binding("f", "fork", "fork", tooltip="fork the focused pane at the cursor into a new "
+                "pane, with a recipe you give (it catches up to the present step)"),
         Binding("e", "edit", "edit", tooltip="edit the focused pane's recipe (from the "
                 "next step on)"),
         Binding("a", "add_pane", "add", tooltip="add a pane that decodes from the prompt "
                 "(it catches up at once)"),
         Binding("x", "remove_pane", "remove", tooltip="remove the focused pane (asks first)"),
-        Binding("r", "rewind", "rewind", tooltip="rewind the session to the cursor"),
+        Binding("r", "rewind", "rewind", tooltip="rewind the session to the cursor (asks "
+                "first, saying what it throws away)"),
         Binding("d", "toggle_draws", "draws", tooltip="shared draws on or off: the same "
                 "uniform number for every pane at a step"),
         Binding("S", "reseed", "seed", tooltip="restart from the prompt with a new seed"),
