@@ -30,7 +30,8 @@ if TYPE_CHECKING:
 
 CHANGES = frozenset({"run_pause", "one_step", "fork", "edit", "add_pane", "remove_pane",
                      "rewind", "toggle_draws", "reseed", "save"})
-ON_PANES = CHANGES | {"cursor", "cursor_to", "inspect", "next_pane"}
+ON_PANES = CHANGES | {"cursor", "cursor_to", "inspect", "next_pane", "copy_text"}
+TO_CLIPBOARD, TO_FILE = "c", "f"
 ANYWHERE = frozenset({"run_pause"})
 
 
@@ -289,6 +290,48 @@ class SessionActions:
 
         self.submit("force", operation)
         self.stepper.run(until=max(back_to, step + 1))
+
+    # ----- copying a pane's text ---------------------------------------------------------
+
+    def action_copy_text(self: "LogitforkApp") -> None:
+        pane = self.focused_pane()
+        if pane is None or pane.pane is None:
+            return
+        name = pane.pane.name
+        text = "".join(r.text for r in pane.pane.records[:self.cursor])
+        if not text:
+            self.notify(f"{shown_line(name)} has no text up to the cursor yet", markup=False)
+            return
+
+        def done(answer: str | None) -> None:
+            if answer == TO_CLIPBOARD:
+                self.copy_to_clipboard(text)  # OSC 52: the terminal may ignore it silently
+                self.notify(f"sent {len(text)} characters of {shown_line(name)} to the "
+                            "clipboard (OSC 52); if nothing arrives, your terminal does not "
+                            "allow it: copy to a file instead (c, then f)", timeout=8,
+                            markup=False)
+            elif answer == TO_FILE:
+                stem = self.source.scenario_name if self.source is not None else "session"
+                path = default_path(f"{stem}-{name}", self.view.seed if self.view else 0,
+                                    folder=self.save_folder).with_suffix(".txt")
+                self._write_text(path, text)
+
+        self.push_screen(ConfirmDialog(
+            f"Copy the text of {name!r} up to the cursor ({len(text)} characters)?",
+            [(TO_CLIPBOARD, "to the clipboard"), (TO_FILE, "to a file"), ("n", "cancel")]),
+            done)
+
+    @work(thread=True, exclusive=False, exit_on_error=False, group="save")
+    def _write_text(self: "LogitforkApp", path: Path, text: str) -> None:
+        from tui.files import write_atomic
+
+        try:
+            write_atomic(path, text)
+        except OSError as exc:
+            self.call_from_thread(self.notify, f"could not write {path}: "
+                                  f"{exc.strerror or exc}", severity="error", markup=False)
+            return
+        self.call_from_thread(self.notify, f"wrote the text to {path}", markup=False)
 
     # ----- saving and quitting -----------------------------------------------------------
 

@@ -15,11 +15,13 @@ from __future__ import annotations
 from pathlib import Path
 from typing import TYPE_CHECKING
 
+from rich.text import Text
 from textual import events, on, work
 from textual.app import App, ComposeResult
 from textual.binding import Binding
 from textual.filter import Monochrome
 from textual.message import Message
+from textual.widgets import Static
 from textual.worker import get_current_worker
 
 from tui.app.actions import CHANGES, SessionActions
@@ -29,6 +31,7 @@ from tui.app.legend import Legend
 from tui.app.loading_panel import LoadingPanel
 from tui.app.pane_grid import PaneGrid
 from tui.app.recovery_offer import RecoveryActions
+from tui.app.safe_text import shown_line
 from tui.app.token_pane import TokenPane
 from tui.app.top_bar import BarState, TopBar
 from tui.session.views import SessionView
@@ -90,6 +93,8 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
                 "uniform number for every pane at a step"),
         Binding("S", "reseed", "seed", tooltip="restart from the prompt with a new seed"),
         Binding("w", "save", "save", tooltip="save the transcript (JSON Lines)"),
+        Binding("c", "copy_text", "copy", tooltip="copy the focused pane's text up to the "
+                "cursor: to the clipboard (where the terminal allows) or to a file"),
         Binding("question_mark", "help", "help", key_display="?", tooltip="this help"),
         Binding("q", "quit_app", "quit", tooltip="quit (asks to save an unsaved session)"),
     ]
@@ -145,6 +150,7 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
 
     def compose(self) -> ComposeResult:
         yield TopBar(id="top-bar")
+        yield Static(Text(), id="scenario-line")
         if self._loader is not None:
             yield LoadingPanel(self._loader.model_name, id="loading")
         yield self.grid
@@ -163,6 +169,7 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
     def _start(self, source: SessionSource) -> None:
         self.source = source
         self.grid.prompt = source.prompt_text
+        self.show_scenario(source)
         self.view = source.first_view()
         self.cursor = self.view.step
         if source.engine is not None:
@@ -175,6 +182,13 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
         for note in getattr(source, "notes", ()):
             self.notify(note, timeout=8, markup=False)
         self.call_after_refresh(self._focus_first_pane)
+
+    def show_scenario(self, source: SessionSource) -> None:
+        """The scenario's title and note, on the line under the top bar."""
+        line = Text(shown_line(source.title), style="bold")
+        if source.note:
+            line.append("  \u2014  " + shown_line(source.note), style="italic")
+        self.grid.screen.query_one("#scenario-line", Static).update(line)
 
     def _focus_first_pane(self) -> None:
         panes = self.grid.panes()

@@ -32,6 +32,7 @@ class SessionSource(Protocol):
     """The app's view of a session. `engine` is None when the session is read-only."""
 
     title: str
+    note: str  # the scenario's one-line note ("" when none)
     model_name: str
     prompt_text: str
     scenario_name: str
@@ -69,6 +70,10 @@ class LiveSource:
     @property
     def title(self) -> str:
         return self.info.scenario.title
+
+    @property
+    def note(self) -> str:
+        return self.info.scenario.note
 
     @property
     def model_name(self) -> str:
@@ -127,6 +132,7 @@ class StaticSource:
     save_reason: str = ""  # why saving is off, when that differs from `reason`
     notes: tuple[str, ...] = ()  # told once when the app opens (reader warnings, the reason)
     label: str = "read-only"  # the top bar's mode word
+    note: str = ""  # a transcript keeps the title only
 
     @property
     def engine(self) -> None:
