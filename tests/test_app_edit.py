@@ -8,6 +8,8 @@ what `copy_to_clipboard` sent (the OSC 52 escape of the xterm control sequences)
 
 from __future__ import annotations
 
+import io
+
 import pytest
 from textual.widgets import Static
 
@@ -17,6 +19,15 @@ try:
     from app_session import live_app, scenario, steps, wait_until
 except ImportError:
     from tests.app_session import live_app, scenario, steps, wait_until
+
+
+def as_text(widget: Static, width: int = 100) -> str:
+    """What a Static holding a Rich renderable prints, as plain text."""
+    from rich.console import Console
+
+    console = Console(width=width, record=True, file=io.StringIO())
+    console.print(widget.content)
+    return console.export_text()
 
 
 @pytest.fixture(scope="module")
@@ -51,3 +62,39 @@ async def test_copy_a_pane_to_the_clipboard_or_to_a_file(lm, tmp_path):
         (path,) = tmp_path.glob("*.txt")
         assert path.read_text(encoding="utf-8") == want
         assert path.name.startswith("harbour-town-greedy-seed3-")
+
+
+async def test_the_recipe_dialog_teaches_the_language(lm):
+    from textual.widgets import Input
+
+    from tui.app.help_screen import HelpScreen
+    from tui.app.recipe_dialog import RecipeDialog
+    from tui.decoding import STAGES
+
+    sc = scenario()
+    app = live_app(lm, sc)
+    async with app.run_test(size=(120, 40)) as pilot:
+        await wait_until(pilot, lambda: app.stepper is not None)
+        await pilot.press("e")
+        dialog = app.screen
+        assert isinstance(dialog, RecipeDialog)
+        shown = as_text(dialog.query_one("#stage-list Static", Static))
+        for spec in STAGES.values():  # every stage the parser takes, with its range
+            assert spec.example in shown and spec.accepts in shown
+        field = dialog.query_one("#dialog-value", Input)
+        field.value = ""
+        await pilot.press(*"temperature=0.8 mi")
+        await wait_until(pilot, lambda: field._suggestion != "", what="a suggestion")
+        assert field._suggestion == "temperature=0.8 min_p="
+        await pilot.press("right")  # takes the completion
+        assert field.value == "temperature=0.8 min_p="
+        await pilot.press(*"1.5", "enter")  # outside [0, 1]: explained in place
+        assert app.screen is dialog
+        assert "min_p" in dialog.error and "[0, 1]" in dialog.error
+        assert STAGES["min_p"].meaning in dialog.error
+        await pilot.press("escape", "question_mark")
+        assert isinstance(app.screen, HelpScreen)
+        listed = as_text(app.screen.query_one("#help-stages", Static), width=200)
+        assert all(spec.meaning in listed and spec.accepts in listed for spec in STAGES.values())
+        assert app.screen.query_one("#help-title", Static).content.plain == sc.title
+        assert app.screen.query_one("#help-note", Static).content.plain == sc.note

@@ -171,7 +171,8 @@ class SessionActions:
         rows = [(self.get_key_display(b), b.tooltip or b.description)
                 for b in self.BINDINGS if isinstance(b, Binding)]  # the key bar's hidden ones too
         rows.append(("escape", "close a view or dialog"))
-        self.push_screen(HelpScreen(rows, self.scheme))
+        scenario = (self.source.title, self.source.note) if self.source else ("", "")
+        self.push_screen(HelpScreen(rows, self.scheme, scenario))
 
     # ----- changing the session -------------------------------------------------------
 
