@@ -29,7 +29,7 @@ def scenario(name: str = "harbour-town", **changes: object) -> Scenario:
 def live_source(lm, sc: Scenario | None = None, *, seed: int = 3) -> LiveSource:
     engine, info = open_session(lm, sc or scenario(), seed=seed)
     info = replace(info, model_name=TEST_MODEL_NAME)
-    return LiveSource(engine, info, lm.decode(list(engine.prompt_ids)))
+    return LiveSource(engine, info, lm.decode(list(engine.prompt_ids)), lm)
 
 
 def live_app(lm, sc: Scenario | None = None, *, seed: int = 3, mono: bool = False,

@@ -98,3 +98,64 @@ async def test_the_recipe_dialog_teaches_the_language(lm):
         assert all(spec.meaning in listed and spec.accepts in listed for spec in STAGES.values())
         assert app.screen.query_one("#help-title", Static).content.plain == sc.title
         assert app.screen.query_one("#help-note", Static).content.plain == sc.note
+
+
+async def test_edit_the_prompt_restarts_the_session_and_the_transcript_says_so(lm, tmp_path):
+    from textual.widgets import Input, TextArea
+
+    from tui.app.scenario_dialog import ScenarioDialog
+    from tui.session.opening import open_session
+    from tui.session.scenario import load_scenario
+    from tui.transcripts.reader import StoredSession
+
+    sc = scenario()
+    app = live_app(lm, sc, save_folder=tmp_path)
+    async with app.run_test(size=(100, 30)) as pilot:
+        await wait_until(pilot, lambda: app.stepper is not None)
+        await steps(pilot, app, 3)
+        await pilot.press("p")
+        dialog = app.screen
+        assert isinstance(dialog, ScenarioDialog)
+        assert dialog.query_one("#prompt-text", TextArea).text == sc.prompt
+        dialog.query_one("#prompt-text", TextArea).text = "@user\nName a colour.\n"
+        dialog.query_one("#max-new-tokens", Input).value = "0"
+        await pilot.press("ctrl+r")  # a bad field: told in place, nothing changes
+        assert app.screen is dialog and "max new tokens" in dialog.error
+        dialog.query_one("#max-new-tokens", Input).value = "5"
+        dialog.query_one("#stop-strings", Input).value = '["\\n\\n", "."]'
+        await pilot.press("ctrl+r")
+        await wait_until(pilot, lambda: app.view.step == 0 and idle_after_edit(app),
+                         what="the restart")
+        engine = app.stepper.engine
+        want_ids = lm.encode_prompt(None, [{"role": "user", "content": "Name a colour."}])
+        assert engine.prompt_ids == tuple(want_ids) and engine.max_new_tokens == 5
+        assert engine.stop_strings == ("\n\n", ".")
+        assert [p.recipe for p in app.view.panes] == [p.recipe for p in sc.panes]
+        assert app.view.seed == 3
+        await steps(pilot, app, 2)
+        # the same as a session opened on the edited scenario from the start
+        edited = app.source.info.scenario
+        fresh, _ = open_session(lm, edited, seed=3)
+        fresh.step(), fresh.step()
+        assert [[r.token_id for r in p.records] for p in app.view.panes] == \
+            [[r.token_id for r in p.records] for p in fresh.view().panes]
+        # the transcript records the edit: the setup before it and the steps it had
+        path = tmp_path / "t.jsonl"
+        path.write_text("\n".join(app.source.transcript_lines(app.view)) + "\n")
+        head = StoredSession.open(path).header
+        assert head.messages == (("user", "Name a colour."),) and head.prompt_text is None
+        (before,) = head.prompt_edits
+        assert (before.steps, before.prompt, before.max_new_tokens, before.stop) == \
+            (3, sc.prompt, sc.max_new_tokens, sc.stop)
+        # save the edited scenario: it reads back as what the session runs
+        await pilot.press("p")
+        target = tmp_path / "mine.toml"
+        app.screen.query_one("#save-path", Input).value = str(target)
+        await pilot.press("ctrl+s")
+        await wait_until(pilot, lambda: target.exists(), what="the scenario file")
+        saved = load_scenario(target)
+        assert saved == edited.__class__(**{**edited.__dict__, "seed": 3})
+
+
+def idle_after_edit(app) -> bool:
+    return app.stepper.idle and not app.busy

@@ -373,3 +373,25 @@ def test_shared_draws_toggle_applies_from_the_next_step_and_survives_rewind(lm):
     e.rewind(6)
     run(e, 2)
     assert [p.records for p in e.view().panes] == [p.records for p in before.panes]
+
+
+def test_a_new_prompt_restarts_the_panes_as_a_fresh_session_on_it(lm):
+    # Reference: an engine opened on the new prompt from the start, with the same panes,
+    # seed and length limit. The edited session must write exactly what it writes.
+    other = "A second, different opening line"
+    ids = lm.encode_prompt(other, None)
+    fresh = Engine(runner_for(lm), lm.decode, ids,
+                   [PaneSpec("p0", "temperature=1.0"), PaneSpec("p1", "mirostat=3")],
+                   seed=5, max_new_tokens=6, eos_ids=(), max_context=lm.max_context)
+    run(fresh, 8)
+    e = make(lm, ["temperature=1.0", "mirostat=3"])
+    run(e, 4)
+    e.fork(0, "greedy")
+    e.remove_pane(2)
+    e.set_prompt(ids, max_new_tokens=6)
+    assert e.step_index == 0 and e.prompt_ids == tuple(ids)
+    run(e, 8)
+    assert tokens(e) == tokens(fresh)
+    assert all(p.stop == STOP_LENGTH for p in e.view().panes)  # the new length limit
+    with pytest.raises(EngineError, match="empty"):
+        e.set_prompt([], max_new_tokens=6)

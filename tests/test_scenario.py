@@ -82,3 +82,33 @@ def test_bad_scenario_on_the_command_line_exits_2_without_traceback(tmp_path):
     lines = out.stderr.strip().splitlines()
     assert len(lines) == 1 and lines[0].startswith(f"error: {path}: pane[1].recipe: ")
     assert "Traceback" not in out.stderr
+
+
+def _roundtrip(sc, tmp_path):
+    from tui.files import write_atomic
+    from tui.session.scenario import scenario_toml
+
+    path = tmp_path / "saved.toml"
+    write_atomic(path, scenario_toml(sc))
+    return load_scenario(path)
+
+
+@pytest.mark.parametrize("name", ["harbour-town", "tea-shop", "planet-question"])
+def test_a_written_scenario_reads_back_the_same(name, tmp_path):
+    # the reader is the standard library's tomllib (TOML 1.0); equality is field by field
+    sc = load_scenario(find_scenario(name))
+    assert _roundtrip(sc, tmp_path) == sc
+
+
+def test_awkward_text_survives_the_round_trip(tmp_path):
+    from tui.session.scenario import PaneSpec, Scenario
+
+    sc = Scenario(title='quotes " and \\ back\\slash', note="tab\there",
+                  panes=(PaneSpec("a \u00e9\u4e2d \U0001F600", "greedy", seed=4),
+                         PaneSpec("b", "temperature=0.7 top_p=0.9")),
+                  messages=(("system", "line one\nline two\r\n"), ("user", "bell\x07 del\x7f")),
+                  model="smollm2-135m-instruct", max_new_tokens=33, seed=9,
+                  shared_draws=False, stop=("\n\n", "'''", '"""'))
+    assert _roundtrip(sc, tmp_path) == sc
+    plain = Scenario(title="t", panes=(PaneSpec("p", "greedy"),), prompt="one\n\ntwo ")
+    assert _roundtrip(plain, tmp_path) == plain

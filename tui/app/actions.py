@@ -29,7 +29,7 @@ if TYPE_CHECKING:
     from tui.session.views import SessionView
 
 CHANGES = frozenset({"run_pause", "one_step", "fork", "edit", "add_pane", "remove_pane",
-                     "rewind", "toggle_draws", "reseed", "save"})
+                     "rewind", "toggle_draws", "reseed", "save", "edit_prompt"})
 ON_PANES = CHANGES | {"cursor", "cursor_to", "inspect", "next_pane", "copy_text"}
 TO_CLIPBOARD, TO_FILE = "c", "f"
 ANYWHERE = frozenset({"run_pause"})
@@ -88,6 +88,11 @@ class SessionActions:
                 self.cursor = self.view.step
         elif label == "restart":
             self.follow, self.cursor = True, 0
+            if self.source is not None and self.source.prompt_text != self.grid.prompt:
+                self.grid.prompt = self.source.prompt_text  # an edited prompt
+                for widget in self.grid.panes():
+                    widget.prompt = self.source.prompt_text
+                self.show_scenario(self.source)
 
     # ----- running and the cursor ---------------------------------------------------
 
@@ -278,6 +283,55 @@ class SessionActions:
                                      str(random.randrange(10**6)), check=check_seed,
                                      hint="Every pane goes back to the prompt; recipes stay."),
                          done)
+
+    def action_edit_prompt(self: "LogitforkApp") -> None:
+        from dataclasses import replace
+
+        from tui.app.scenario_dialog import RESTART, EditedScenario, ScenarioDialog
+        from tui.session.scenario import PaneSpec
+        from tui.workbench.source import LiveSource
+
+        source, view = self.source, self.view
+        if not isinstance(source, LiveSource) or view is None:
+            return
+        now = replace(source.info.scenario, seed=view.seed, shared_draws=view.shared_draws,
+                      panes=tuple(PaneSpec(p.name, p.recipe, p.seed) for p in view.panes))
+        stem = now.path.stem if now.path is not None else "session"
+        path = (self.save_folder or Path(".")) / f"{stem}-edited.toml"
+
+        def done(answer: EditedScenario | None) -> None:
+            if answer is None:
+                return
+            if answer.action != RESTART:
+                if answer.path is not None:
+                    self._write_scenario(answer.path, answer.scenario)
+                return
+            if self.stepper is not None:
+                self.stepper.pause()
+            log = self.recovery
+
+            def operation(engine: Engine) -> None:
+                source.restart_with(answer.scenario)
+                if log is not None:  # the old prompt's records no longer apply
+                    log.restart(engine.view(), source.info, engine.prompt_ids)
+
+            self.submit("restart", operation)
+
+        self.push_screen(ScenarioDialog(now, path), done)
+
+    @work(thread=True, exclusive=False, exit_on_error=False, group="save")
+    def _write_scenario(self: "LogitforkApp", path: Path, scenario: Any) -> None:
+        from tui.files import write_atomic
+        from tui.session.scenario import scenario_toml
+
+        try:
+            write_atomic(path, scenario_toml(scenario))
+        except OSError as exc:
+            self.call_from_thread(self.notify, f"could not save {path}: "
+                                  f"{exc.strerror or exc}", severity="error", markup=False)
+            return
+        self.call_from_thread(self.notify, f"saved the scenario to {path} (open it with "
+                              f"`logitfork watch {path}`)", markup=False)
 
     def force_token(self: "LogitforkApp", pane_id: int, step: int, token_id: int) -> None:
         """Force a token at a step, then run the session back to where it was."""

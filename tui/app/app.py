@@ -92,6 +92,9 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
         Binding("d", "toggle_draws", "draws", tooltip="shared draws on or off: the same "
                 "uniform number for every pane at a step"),
         Binding("S", "reseed", "seed", tooltip="restart from the prompt with a new seed"),
+        Binding("p", "edit_prompt", "prompt", tooltip="edit the prompt (text or chat), the "
+                "length limit and the stop strings: the session restarts from the new "
+                "prompt; or save the scenario as a TOML file"),
         Binding("w", "save", "save", tooltip="save the transcript (JSON Lines)"),
         Binding("c", "copy_text", "copy", tooltip="copy the focused pane's text up to the "
                 "cursor: to the clipboard (where the terminal allows) or to a file"),

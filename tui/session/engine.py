@@ -417,6 +417,25 @@ class Engine:
                 pane.sampler = pane.recipe.sampler()
             self._logits.clear()
 
+    def set_prompt(self, prompt_ids: Sequence[int], *, max_new_tokens: int,
+                   stop_strings: Sequence[str] = ()) -> None:
+        """Restart every pane from a new prompt (and length limit and stop strings): the
+        panes, their recipes, the seed and the draw setting stay; every token goes."""
+        with self._lock:
+            if not prompt_ids:
+                raise EngineError("the prompt is empty: give at least one token")
+            if len(prompt_ids) >= self.max_context:
+                raise EngineError(f"the prompt has {len(prompt_ids)} tokens; the model's "
+                                  f"context holds {self.max_context}")
+            self.rewind(0)
+            self.prompt_ids = tuple(prompt_ids)
+            self.max_new_tokens = max_new_tokens
+            self.stop_strings = tuple(stop_strings)
+            self._prompt_kv, prompt_logits = self.runner.prefill([self.prompt_ids])
+            self._prompt_logits = prompt_logits[0]
+            self.restart(self.seed)  # fresh samplers, the draw log from the start
+            self._rebuild(self._live, {}, 0)
+
     def set_shared_draws(self, shared: bool) -> None:
         """Takes effect from the next step on (the uniform numbers already drawn stay)."""
         with self._lock:

@@ -11,7 +11,7 @@ from typing import TYPE_CHECKING
 
 from tui.decoding.allocator import retain_freed_memory
 from tui.session.engine import Engine
-from tui.session.scenario import Scenario
+from tui.session.scenario import EarlierSetup, Scenario
 
 if TYPE_CHECKING:
     from tui.model.catalogue import LoadedModel
@@ -25,6 +25,7 @@ class SessionInfo:
     model_name: str
     model_source: str
     dtype: str
+    prompt_edits: tuple[EarlierSetup, ...] = ()  # setups before each prompt edit, oldest first
 
 
 def open_session(lm: "LoadedModel", scenario: Scenario, *, seed: int | None = None,

@@ -20,6 +20,7 @@ if TYPE_CHECKING:
     import numpy as np
 
     from tui.decoding import StageResult
+    from tui.model.loaded import LoadedModel
     from tui.session.engine import Engine
     from tui.session.opening import SessionInfo
     from tui.session.scenario import Scenario
@@ -57,11 +58,33 @@ class SessionSource(Protocol):
 
 @dataclass
 class LiveSource:
-    """A session on a live engine: every control is on."""
+    """A session on a live engine: every control is on.
+
+    With `model`, the prompt can be edited (`restart_with`): the prompt must be encoded.
+    """
 
     live_engine: Engine
     info: "SessionInfo"
     prompt_text: str
+    model: "LoadedModel | None" = None
+
+    def restart_with(self, scenario: "Scenario") -> None:
+        """Restart the session on `scenario`'s prompt, length limit and stop strings (call
+        on the engine's worker: it prefills). The old setup is kept in `info.prompt_edits`."""
+        from dataclasses import replace
+
+        from tui.session.scenario import EarlierSetup
+        from tui.session.views import EngineError
+
+        if self.model is None:
+            raise EngineError("this session was opened without its model's tokenizer")
+        ids = self.model.encode_prompt(scenario.prompt, scenario.message_dicts)
+        earlier = EarlierSetup.of(self.info.scenario, self.live_engine.step_index)
+        self.live_engine.set_prompt(ids, max_new_tokens=scenario.max_new_tokens,
+                                    stop_strings=scenario.stop)
+        self.info = replace(self.info, scenario=scenario,
+                            prompt_edits=self.info.prompt_edits + (earlier,))
+        self.prompt_text = self.model.decode(list(ids))
 
     @property
     def engine(self) -> Engine:
@@ -188,4 +211,4 @@ class SessionLoader:
         progress("reading the prompt", None)
         engine, info = open_session(lm, self.scenario, seed=self.seed,
                                     max_new_tokens=self.max_new_tokens)
-        return LiveSource(engine, info, lm.decode(list(engine.prompt_ids)))
+        return LiveSource(engine, info, lm.decode(list(engine.prompt_ids)), lm)
