@@ -62,7 +62,7 @@ async def test_start_step_pause_and_cursor(lm):
         body = pane_plain(app, 0)
         assert body.endswith(shown(text))
         assert app.grid.panes()[0].query_one(".pane-status").content.plain.startswith(
-            f"step {end - 2}/{end}")
+            f"step {end - 3}/{end - 1}")  # the last step shown, of the last; from 0
         await pilot.press("home")
         assert app.cursor == 0
         await pilot.press("end")
@@ -222,8 +222,8 @@ async def test_draws_rewind_restart_and_quit_without_saving(lm):
         await pilot.press("left", "left", "r")
         # it asks first, saying what goes: 2 steps in each of the 4 panes
         assert isinstance(app.screen, ConfirmDialog)
-        assert "Rewind to step 4?" in app.screen.question
-        assert "8 tokens after step 4 in 4 pane(s)" in app.screen.question
+        assert "Rewind to step 4 (steps 0-3 stay)?" in app.screen.question
+        assert "8 tokens from step 4 on in 4 pane(s)" in app.screen.question
         await pilot.press("n")  # keep: nothing changes
         assert not isinstance(app.screen, ConfirmDialog) and app.view.step == 6
         await pilot.press("r", "y")
@@ -323,14 +323,14 @@ async def test_fork_at_the_cursor_keeps_the_text_shown_and_catches_up(lm):
         await pilot.press("left", "left")  # cursor at step 4 of 6
         await pilot.press("f")
         dialog = app.screen
-        assert isinstance(dialog, RecipeDialog) and "after step 4" in dialog.title_text
+        assert isinstance(dialog, RecipeDialog) and "at step 4: the new pane's recipe, from step 4 on" in dialog.title_text
         dialog.query_one("#dialog-value", Input).value = "greedy"
         await pilot.press("enter")
         await wait_until(pilot, lambda: len(app.view.panes) == 5 and idle(app), what="fork")
         fork = app.view.panes[-1]
         assert fork.origin == (source.id, 4) and len(fork.records) == 6
         assert [r.token_id for r in fork.records[:4]] == [r.token_id for r in source.records[:4]]
-        assert all(r.rank == 1 for r in fork.records[4:])  # greedy from step 5 on
+        assert all(r.rank == 1 for r in fork.records[4:])  # greedy from step 4 on (steps count from 0)
         # the rewind question counts a forced token and a recipe edit after the cursor
         from tui.app.actions import rewind_question
         from dataclasses import replace
@@ -340,5 +340,5 @@ async def test_fork_at_the_cursor_keeps_the_text_shown_and_catches_up(lm):
                          records=view.panes[0].records[:5] + (
                              replace(view.panes[0].records[5], forced=True),))
         text = rewind_question(replace(view, panes=(edited,) + view.panes[1:]), 3)
-        assert "15 tokens after step 3 in 5 pane(s) and 1 forced token" in text
-        assert "1 recipe change made after step 3 will apply from step 4 on" in text
+        assert "15 tokens from step 3 on in 5 pane(s) and 1 forced token" in text
+        assert "1 recipe change made for a later step will apply from step 3 on" in text

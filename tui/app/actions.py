@@ -47,14 +47,15 @@ def rewind_question(view: "SessionView", step: int) -> str:
     forced = sum(1 for p in view.panes for r in p.records[step:] if r.forced)
     edits = sum(1 for p in view.panes for s, _r in p.recipe_log if s > step and
                 not (p.origin is not None and s == p.origin[1]))
-    parts = [f"{dropped} token{'s' if dropped != 1 else ''} after step {step} in "
+    parts = [f"{dropped} token{'s' if dropped != 1 else ''} from step {step} on in "
              f"{sum(1 for p in view.panes if len(p.records) > step)} pane(s)"]
     if forced:
         parts.append(f"{forced} forced token{'s' if forced != 1 else ''}")
     what = " and ".join(parts)
-    moved = (f" {edits} recipe change{'s' if edits != 1 else ''} made after step {step} "
-             f"will apply from step {step + 1} on." if edits else "")
-    return f"Rewind to step {step}? This throws away {what}.{moved}"
+    moved = (f" {edits} recipe change{'s' if edits != 1 else ''} made for a later step "
+             f"will apply from step {step} on." if edits else "")
+    return f"Rewind to step {step} (steps 0-{step - 1} stay)? This throws away {what}.{moved}" \
+        if step else f"Rewind to the prompt? This throws away {what}.{moved}"
 
 
 class SessionActions:
@@ -197,9 +198,10 @@ class SessionActions:
             if choice is not None:
                 self.submit("fork", lambda e: e.fork(src.id, choice.recipe, choice.name, at=at))
 
-        later = (f"; it catches up to step {self.view.step}" if at < self.view.step else "")
-        title = (f"Fork {shown_line(src.name)} after step {at}: the new pane's recipe, from "
-                 f"step {at + 1} on{later}")
+        later = (f"; it catches up to step {self.view.step - 1}" if at < self.view.step
+                 else "")
+        title = (f"Fork {shown_line(src.name)} at step {at}: the new pane's recipe, from "
+                 f"step {at} on{later}")
         self.push_screen(RecipeDialog(title, src.recipe, name=f"{src.name} fork"), done)
 
     def action_edit(self: "LogitforkApp") -> None:
@@ -213,7 +215,7 @@ class SessionActions:
                 self.submit("edit", lambda e: e.set_recipe(src.id, choice.recipe))
 
         title = (f"Recipe of {shown_line(src.name)} from step {len(src.records)} on "
-                 "(earlier tokens stay)")
+                 "(earlier steps stay)")
         self.push_screen(RecipeDialog(title, src.recipe), done)
 
     def action_add_pane(self: "LogitforkApp") -> None:
@@ -226,7 +228,8 @@ class SessionActions:
             if choice is not None:
                 self.submit("add", lambda e: e.add_pane(choice.recipe, choice.name))
 
-        title = f"A new pane from the prompt (it catches up to step {self.view.step})"
+        title = (f"A new pane from the prompt (it catches up to step {self.view.step - 1})"
+                 if self.view.step else "A new pane from the prompt")
         self.push_screen(RecipeDialog(title, recipe, name=f"pane {len(self.view.panes) + 1}"),
                          done)
 

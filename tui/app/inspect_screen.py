@@ -133,7 +133,7 @@ class InspectScreen(Screen[tuple[int, int, int] | None]):
     def _title(self) -> Text:
         text = Text("Inspect ", style="bold")
         text.append(shown_line(self.pane.name), style="bold")
-        text.append(f"  step {self.step + 1} of {len(self.pane.records)}")
+        text.append(f"  step {self.step} of 0-{len(self.pane.records) - 1}")
         text.append("  recipe ")
         text.append(shown_line(recipe_at(self.pane, self.step)), style="italic")
         return text
@@ -281,9 +281,9 @@ class InspectScreen(Screen[tuple[int, int, int] | None]):
         if row.chosen:
             self.notify("that is the token chosen here already", markup=False)
             return
-        forward = f"; every pane runs again to step {self.view.step}" if self.view.step > \
+        forward = f"; every pane runs again to step {self.view.step - 1}" if self.view.step > \
             self.step + 1 else ""
-        question = (f"Force {shown_token(row.text)} (rank {row.rank}) at step {self.step + 1} "
+        question = (f"Force {shown_token(row.text)} (rank {row.rank}) at step {self.step} "
                     f"of {self.pane.name}? The session rewinds to that step{forward}; the "
                     "other panes draw the same numbers and write the same text again.")
         token = row.token_id

@@ -57,10 +57,11 @@ def status_text(records: tuple[StepRecord, ...] | list[StepRecord], total: int,
     Parts are joined with " · " and never split across lines at a narrow `width`.
     """
     if not records:
-        return Text("step 0 \u00b7 no tokens yet", style="dim")
+        return Text("no tokens yet", style="dim")
     last = records[-1]
     lp = mean_logprob(records)
-    parts = [f"step {len(records)}" + (f"/{total}" if total != len(records) else ""),
+    # the last step shown, numbered from 0 as everywhere (transcripts, reports, inspect)
+    parts = [f"step {len(records) - 1}" + (f"/{total - 1}" if total != len(records) else ""),
              f"kept {last.kept}", f"H {abs(last.final_entropy):.2f}",
              f"logp {lp:.2f}" if math.isfinite(lp) else "logp -inf"]
     if last.stop:

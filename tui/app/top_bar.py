@@ -52,9 +52,10 @@ def bar_text(state: BarState) -> Text:
     rate = state.steps_per_second
     if not state.read_only:  # a stored session is not stepped
         text.append(f"  {rate:.1f} steps/s" if rate else "  - steps/s")
-    where = f"step {state.step}"
+    # counts of steps, not step numbers (those count from 0: the last of 12 steps is 11)
+    where = f"{state.step} step{'s' if state.step != 1 else ''}"
     if state.cursor != state.step:
-        where = f"cursor {state.cursor}/{state.step}"
+        where = f"cursor {state.cursor}/{state.step} steps"
     text.append(f"  {where}", style="bold")
     return text
 
