@@ -34,9 +34,7 @@ def live_source(lm, sc: Scenario | None = None, *, seed: int = 3) -> LiveSource:
 
 def live_app(lm, sc: Scenario | None = None, *, seed: int = 3, mono: bool = False,
              save_folder=None) -> LogitforkApp:
-    app = make_app(source=live_source(lm, sc, seed=seed), mono=mono, save_folder=save_folder)
-    app.frozen_rate = 0.0  # the clock-dependent rate would make screens differ
-    return app
+    return make_app(source=live_source(lm, sc, seed=seed), mono=mono, save_folder=save_folder)
 
 
 async def wait_until(pilot: Pilot, condition: Callable[[], bool], timeout: float = 20.0,

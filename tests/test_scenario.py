@@ -93,7 +93,7 @@ def _roundtrip(sc, tmp_path):
     return load_scenario(path)
 
 
-@pytest.mark.parametrize("name", ["harbour-town", "tea-shop", "planet-question"])
+@pytest.mark.parametrize("name", ["harbour-town", "tea-shop", "planet-question", "captain-name"])
 def test_a_written_scenario_reads_back_the_same(name, tmp_path):
     # the reader is the standard library's tomllib (TOML 1.0); equality is field by field
     sc = load_scenario(find_scenario(name))

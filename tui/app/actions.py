@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import random
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Callable
+from typing import TYPE_CHECKING, Any
 
 from textual import work
 from textual.binding import Binding
@@ -22,10 +22,21 @@ from tui.app.recipe_dialog import RecipeChoice, RecipeDialog
 from tui.app.safe_text import shown_line
 from tui.app.save_dialog import SaveDialog, default_path
 from tui.app.token_pane import TokenPane
+from tui.workbench.operations import (
+    AddPane,
+    EditPrompt,
+    EditRecipe,
+    Force,
+    Fork,
+    Operation,
+    RemovePane,
+    Restart,
+    Rewind,
+    SetDraws,
+)
 
 if TYPE_CHECKING:
     from tui.app.app import LogitforkApp
-    from tui.session.engine import Engine
     from tui.session.views import SessionView
 
 CHANGES = frozenset({"run_pause", "one_step", "fork", "edit", "add_pane", "remove_pane",
@@ -71,23 +82,23 @@ class SessionActions:
             return None
         return True
 
-    def submit(self: "LogitforkApp", label: str, operation: Callable[[Engine], Any]) -> None:
+    def submit(self: "LogitforkApp", operation: Operation) -> None:
         """Queue engine work on the worker; the top bar shows it until it is done."""
         if self.stepper is None:
             return
-        self.busy.append(label)
-        self.stepper.submit(label, operation)
+        self.busy.append(operation)
+        self.stepper.submit(operation)
         self.schedule_redraw()
 
-    def after_operation(self: "LogitforkApp", label: str, result: Any) -> None:
+    def after_operation(self: "LogitforkApp", operation: Operation, result: Any) -> None:
         """Follow-ups on the app's side once an operation is done."""
-        if label in ("fork", "add") and isinstance(result, int):
+        if isinstance(operation, (Fork, AddPane)) and isinstance(result, int):
             self.focus_wanted = result  # focused once the redraw has mounted it
-        elif label == "force":
+        elif isinstance(operation, Force):
             self.follow = True
             if self.view is not None:
                 self.cursor = self.view.step
-        elif label == "restart":
+        elif isinstance(operation, (Restart, EditPrompt)):
             self.follow, self.cursor = True, 0
             if self.source is not None and self.source.prompt_text != self.grid.prompt:
                 self.grid.prompt = self.source.prompt_text  # an edited prompt
@@ -196,7 +207,7 @@ class SessionActions:
 
         def done(choice: RecipeChoice | None) -> None:
             if choice is not None:
-                self.submit("fork", lambda e: e.fork(src.id, choice.recipe, choice.name, at=at))
+                self.submit(Fork(src.id, choice.recipe, choice.name, at))
 
         later = (f"; it catches up to step {self.view.step - 1}" if at < self.view.step
                  else "")
@@ -212,7 +223,7 @@ class SessionActions:
 
         def done(choice: RecipeChoice | None) -> None:
             if choice is not None and choice.recipe != src.recipe:
-                self.submit("edit", lambda e: e.set_recipe(src.id, choice.recipe))
+                self.submit(EditRecipe(src.id, choice.recipe))
 
         title = (f"Recipe of {shown_line(src.name)} from step {len(src.records)} on "
                  "(earlier steps stay)")
@@ -226,7 +237,7 @@ class SessionActions:
 
         def done(choice: RecipeChoice | None) -> None:
             if choice is not None:
-                self.submit("add", lambda e: e.add_pane(choice.recipe, choice.name))
+                self.submit(AddPane(choice.recipe, choice.name))
 
         title = (f"A new pane from the prompt (it catches up to step {self.view.step - 1})"
                  if self.view.step else "A new pane from the prompt")
@@ -244,7 +255,7 @@ class SessionActions:
 
         def done(answer: str | None) -> None:
             if answer == "y":
-                self.submit("remove", lambda e: e.remove_pane(pane_id))
+                self.submit(RemovePane(pane_id))
                 self.call_after_refresh(self.action_next_pane)
 
         self.push_screen(ConfirmDialog(f"Remove the pane {name!r} and its text?",
@@ -263,7 +274,7 @@ class SessionActions:
             if answer == "y" and self.stepper is not None:
                 self.stepper.pause()
                 self.follow = True
-                self.submit("rewind", lambda e: e.rewind(step))
+                self.submit(Rewind(step))
 
         self.push_screen(ConfirmDialog(rewind_question(self.view, step),
                                        [("y", "rewind"), ("n", "keep")]), done)
@@ -272,7 +283,7 @@ class SessionActions:
         if self.view is None:
             return
         shared = not self.view.shared_draws
-        self.submit("draws", lambda e: e.set_shared_draws(shared))
+        self.submit(SetDraws(shared))
 
     def action_reseed(self: "LogitforkApp") -> None:
         def done(text: str | None) -> None:
@@ -280,7 +291,7 @@ class SessionActions:
                 seed = int(text)
                 if self.stepper is not None:
                     self.stepper.pause()
-                self.submit("restart", lambda e: e.restart(seed))
+                self.submit(Restart(seed))
 
         self.push_screen(InputDialog("Restart from the prompt with the seed",
                                      str(random.randrange(10**6)), check=check_seed,
@@ -311,14 +322,7 @@ class SessionActions:
                 return
             if self.stepper is not None:
                 self.stepper.pause()
-            log = self.recovery
-
-            def operation(engine: Engine) -> None:
-                source.restart_with(answer.scenario)
-                if log is not None:  # the old prompt's records no longer apply
-                    log.restart(engine.view(), source.info, engine.prompt_ids)
-
-            self.submit("restart", operation)
+            self.submit(EditPrompt(source, answer.scenario, self.recovery))
 
         self.push_screen(ScenarioDialog(now, path), done)
 
@@ -343,10 +347,7 @@ class SessionActions:
         back_to = self.view.step
         self.stepper.pause()
 
-        def operation(engine: Engine) -> None:
-            engine.force(pane_id, step, token_id)
-
-        self.submit("force", operation)
+        self.submit(Force(pane_id, step, token_id))
         self.stepper.run(until=max(back_to, step + 1))
 
     # ----- copying a pane's text ---------------------------------------------------------

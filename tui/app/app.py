@@ -41,14 +41,15 @@ from tui.workbench.stepper import (
     Failed,
     OperationDone,
     RunChanged,
+    StepFailed,
     Stepped,
     Stepper,
     StepperEvent,
 )
+from tui.workbench.operations import Operation
 
 if TYPE_CHECKING:
     from tui.transcripts.recovery_log import RecoveryLog
-    from tui.transcripts.recovery_reader import RecoverySummary
 
 REDRAW_SECONDS = 1 / 30  # the panes redraw at most this often, however fast steps come
 RATE_SMOOTHING = 0.3  # weight of the newest step in the steps-per-second average
@@ -127,7 +128,6 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
         self.keep_recovery = recovery  # keep a crash-recovery log, offer leftover ones
         self.recovery: RecoveryLog | None = None
         self.recovery_told = False  # the log's failure was told
-        self.recovery_offered: RecoverySummary | None = None
         self.scheme = Scheme(mono)
         if mono and not self.no_color:
             self._filters.append(Monochrome())  # --mono: no colour anywhere, as NO_COLOR
@@ -141,9 +141,8 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
         self.version = 0  # counts changes to the session, for "unsaved"
         self.saved_version = 0
         self.discarded = False  # the user quit without saving: the session is thrown away
-        self.busy: list[str] = []  # operations queued or under way
+        self.busy: list[Operation] = []  # operations queued or under way
         self.steps_per_second: float | None = None
-        self.frozen_rate: float | None = None  # tests: show this rate instead (0 = none)
         self.error_message: str | None = None  # set when the model failed to load
         self.redraw_due = False
         self.focus_wanted: int | None = None  # a new pane to focus once it is mounted
@@ -250,15 +249,15 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
             old = self.steps_per_second
             self.steps_per_second = rate if old is None else old + RATE_SMOOTHING * (rate - old)
         elif isinstance(event, OperationDone):
-            self._finish_operation(event.label)
+            self._finish_operation(event.operation)
             self._take_view(event.view)
-            self.after_operation(event.label, event.result)
+            self.after_operation(event.operation, event.result)
         elif isinstance(event, Failed):
-            if event.label != "step":
-                self._finish_operation(event.label)
+            if event.operation is not None:
+                self._finish_operation(event.operation)
             if event.view is not None:
                 self._take_view(event.view)
-            if event.label == "step":
+            if isinstance(event, StepFailed):
                 text = f"a step failed: {event.message}. The session is paused and unchanged."
             else:
                 text = f"{event.label} failed: {event.message}"
@@ -270,9 +269,9 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
             self._recovery_failed()
         self.schedule_redraw()
 
-    def _finish_operation(self, label: str) -> None:
-        if label in self.busy:
-            self.busy.remove(label)
+    def _finish_operation(self, operation: Operation) -> None:
+        if operation in self.busy:
+            self.busy.remove(operation)
 
     def _take_view(self, view: SessionView) -> None:
         if self.view is not None and view == self.view:
@@ -294,14 +293,14 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
     def redraw(self) -> None:
         self.redraw_due = False
         view = self.view
-        rate = self.steps_per_second if self.frozen_rate is None else self.frozen_rate
+        rate = self.steps_per_second
         running = self.stepper.running if self.stepper else False
         state = BarState(
             model=self.source.model_name if self.source else
             (self._loader.model_name if self._loader else ""),
             seed=view.seed if view else None,
             shared_draws=view.shared_draws if view else None,
-            steps_per_second=rate, running=running, busy=", ".join(self.busy),
+            steps_per_second=rate, running=running, busy=", ".join(op.label for op in self.busy),
             step=view.step if view else 0, cursor=self.cursor,
             read_only=self.source is not None and self.source.engine is None,
             loading=self.source is None, mode=getattr(self.source, "label", "read-only"))

@@ -94,7 +94,6 @@ class RecoveryActions:
             self.call_from_thread(self._offer_recovery, found[0], len(found) - 1)
 
     def _offer_recovery(self: "LogitforkApp", found: "RecoverySummary", older: int) -> None:
-        self.recovery_offered = found
 
         def done(answer: str | None) -> None:
             if answer == REOPEN:
