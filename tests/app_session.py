@@ -29,17 +29,15 @@ def scenario(name: str = "harbour-town", **changes: object) -> Scenario:
 def live_source(lm, sc: Scenario | None = None, *, seed: int = 3) -> LiveSource:
     engine, info = open_session(lm, sc or scenario(), seed=seed)
     info = replace(info, model_name=TEST_MODEL_NAME)
-    return LiveSource(engine, info, lm.decode(list(engine.prompt_ids)))
+    return LiveSource(engine, info, lm.decode(list(engine.prompt_ids)), lm)
 
 
 def live_app(lm, sc: Scenario | None = None, *, seed: int = 3, mono: bool = False,
              save_folder=None, depth: str = "truecolor") -> LogitforkApp:
     """The app on the tiny model; `depth` pinned, so that the terminal running the tests
     does not decide the colours."""
-    app = make_app(source=live_source(lm, sc, seed=seed), mono=mono, save_folder=save_folder,
-                   depth=depth)
-    app.frozen_rate = 0.0  # the clock-dependent rate would make screens differ
-    return app
+    return make_app(source=live_source(lm, sc, seed=seed), mono=mono, save_folder=save_folder,
+                    depth=depth)
 
 
 async def wait_until(pilot: Pilot, condition: Callable[[], bool], timeout: float = 20.0,

@@ -11,6 +11,7 @@ from __future__ import annotations
 import pytest
 from textual.widgets import DataTable, Input
 
+from tui.app.confirm_dialog import ConfirmDialog
 from tui.app.input_dialog import InputDialog
 from tui.app.inspect_screen import InspectScreen
 from tui.app.recipe_dialog import RecipeDialog
@@ -62,7 +63,7 @@ async def test_start_step_pause_and_cursor(lm):
         body = pane_plain(app, 0)
         assert body.endswith(shown(text))
         assert app.grid.panes()[0].query_one(".pane-status").content.plain.startswith(
-            f"step {end - 2}/{end}")
+            f"step {end - 3}/{end - 1}")  # the last step shown, of the last; from 0
         await pilot.press("home")
         assert app.cursor == 0
         await pilot.press("end")
@@ -224,6 +225,13 @@ async def test_draws_rewind_restart_and_quit_without_saving(lm):
         # rewind to the cursor: the session keeps what the panes show
         kept = [[r.token_id for r in p.records[:4]] for p in app.view.panes]
         await pilot.press("left", "left", "r")
+        # it asks first, saying what goes: 2 steps in each of the 4 panes
+        assert isinstance(app.screen, ConfirmDialog)
+        assert "Rewind to step 4 (steps 0-3 stay)?" in app.screen.question
+        assert "8 tokens from step 4 on in 4 pane(s)" in app.screen.question
+        await pilot.press("n")  # keep: nothing changes
+        assert not isinstance(app.screen, ConfirmDialog) and app.view.step == 6
+        await pilot.press("r", "y")
         await wait_until(pilot, lambda: app.view.step == 4 and idle(app), what="the rewind")
         assert [[r.token_id for r in p.records] for p in app.view.panes] == kept
         assert app.cursor == 4
@@ -282,3 +290,60 @@ def test_the_seed_check_takes_only_ascii_digits():
     assert check_seed("0") is None and check_seed("12345") is None
     for bad in ("", "-1", "1.5", "²", "٣"):  # superscript two and Arabic-Indic three pass str.isdigit
         assert check_seed(bad) is not None  # int() of each would fail or give a negative seed
+
+
+async def test_the_fork_dialog_takes_typed_text_in_both_fields_in_tab_order(lm):
+    app = live_app(lm)
+    async with app.run_test(size=(100, 30)) as pilot:
+        await wait_until(pilot, lambda: app.stepper is not None)
+        await steps(pilot, app, 2)
+        await pilot.press("f")
+        dialog = app.screen
+        assert isinstance(dialog, RecipeDialog)
+        name = dialog.query_one("#dialog-name", Input)
+        recipe = dialog.query_one("#dialog-value", Input)
+        assert dialog.focused is name  # the first field shown is the first focused
+        await pilot.press(*" 2")
+        await pilot.press("tab")
+        assert dialog.focused is recipe
+        await pilot.press("end", *" top_k=3")
+        assert name.value == "greedy fork 2" and recipe.value == "greedy top_k=3"
+        await pilot.press("enter")
+        await wait_until(pilot, lambda: len(app.view.panes) == 5 and idle(app), what="fork")
+        fork = app.view.panes[-1]
+        assert fork.name == "greedy fork 2" and fork.recipe == "greedy top_k=3"
+
+
+async def test_fork_at_the_cursor_keeps_the_text_shown_and_catches_up(lm):
+    app = live_app(lm)
+    async with app.run_test(size=(100, 30)) as pilot:
+        await wait_until(pilot, lambda: app.stepper is not None)
+        await steps(pilot, app, 6)
+        source = app.view.panes[1]
+        from tui.app.key_bar import key_items
+
+        assert ("tab", "pane", True) in key_items(app.screen)  # the key bar says how
+        await pilot.press("tab")  # the second pane
+        assert app.focused is app.grid.panes()[1]
+        await pilot.press("left", "left")  # cursor at step 4 of 6
+        await pilot.press("f")
+        dialog = app.screen
+        assert isinstance(dialog, RecipeDialog) and "at step 4: the new pane's recipe, from step 4 on" in dialog.title_text
+        dialog.query_one("#dialog-value", Input).value = "greedy"
+        await pilot.press("enter")
+        await wait_until(pilot, lambda: len(app.view.panes) == 5 and idle(app), what="fork")
+        fork = app.view.panes[-1]
+        assert fork.origin == (source.id, 4) and len(fork.records) == 6
+        assert [r.token_id for r in fork.records[:4]] == [r.token_id for r in source.records[:4]]
+        assert all(r.rank == 1 for r in fork.records[4:])  # greedy from step 4 on (steps count from 0)
+        # the rewind question counts a forced token and a recipe edit after the cursor
+        from tui.app.actions import rewind_question
+        from dataclasses import replace
+
+        view = app.view
+        edited = replace(view.panes[0], recipe_log=((0, "greedy"), (5, "top_k=2")),
+                         records=view.panes[0].records[:5] + (
+                             replace(view.panes[0].records[5], forced=True),))
+        text = rewind_question(replace(view, panes=(edited,) + view.panes[1:]), 3)
+        assert "15 tokens from step 3 on in 5 pane(s) and 1 forced token" in text
+        assert "1 recipe change made for a later step will apply from step 3 on" in text

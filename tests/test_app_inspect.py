@@ -78,7 +78,6 @@ async def test_a_chosen_token_at_rank_80_is_findable_and_the_cursor_starts_on_it
     from tui.app.app import make_app
 
     app = make_app(source=source)
-    app.frozen_rate = 0.0
     async with app.run_test(size=(120, 40)) as pilot:
         await wait_until(pilot, lambda: app.grid.panes())
         app.open_inspect(pane.id, 0)

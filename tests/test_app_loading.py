@@ -64,15 +64,6 @@ def test_watch_refuses_a_bad_scenario_before_any_screen(capsys):
     assert err.count("\n") == 1
 
 
-def test_watch_refuses_a_negative_seed(capsys):
-    import pytest
-
-    with pytest.raises(SystemExit) as stop:
-        cli_main(["watch", "--seed", "-1"])
-    assert stop.value.code == 2
-    assert "--seed: must be >= 0, got -1" in capsys.readouterr().err
-
-
 def test_no_color_means_mono():
     # no-color.org: NO_COLOR set and not empty turns colour off
     assert wants_mono(False, {"NO_COLOR": "1"})

@@ -100,16 +100,34 @@ async def test_a_live_session_writes_its_log_and_a_clean_quit_after_saving_delet
     assert not path.exists()
 
 
-async def test_quitting_without_saving_keeps_every_step(lm, state):
+async def test_quitting_without_saving_deletes_the_log_and_nothing_is_offered_next(lm, state):
+    app = make_app(source=live_source(lm), recovery=True)
+    async with app.run_test(size=(100, 30)) as pilot:
+        await wait_until(pilot, lambda: app.stepper is not None)
+        await steps(pilot, app, 3)
+        path = app.recovery.path
+        assert path.exists()
+        await pilot.press("q")
+        assert isinstance(app.screen, ConfirmDialog)
+        await pilot.press("d")  # quit without saving: the user threw the session away
+        await wait_until(pilot, lambda: not app.is_running, what="exit")
+    assert not path.exists() and logs(state) == []
+    again = make_app(source=live_source(lm), recovery=True)
+    async with again.run_test(size=(100, 30)) as pilot:
+        await wait_until(pilot, lambda: again.stepper is not None)
+        await pilot.pause(0.3)  # the scan for leftover logs runs on a worker
+        await again.workers.wait_for_complete()
+        assert not isinstance(again.screen, ConfirmDialog)  # no offer of the thrown-away log
+
+
+async def test_an_unclean_end_keeps_every_step(lm, state):
     app = make_app(source=live_source(lm), recovery=True)
     async with app.run_test(size=(100, 30)) as pilot:
         await wait_until(pilot, lambda: app.stepper is not None)
         await steps(pilot, app, 3)
         view = app.view
         path = app.recovery.path
-        await pilot.press("q")
-        assert isinstance(app.screen, ConfirmDialog)
-        await pilot.press("d")  # quit without saving
+        app.exit(return_code=1)  # an error exit: the log is what is left of the session
         await wait_until(pilot, lambda: not app.is_running, what="exit")
     rec = read_recovery(path)  # closing flushed the step the periodic flush had not
     assert {p.id: ids(p.records) for p in view.panes} == \
@@ -181,7 +199,7 @@ async def test_a_log_of_a_running_session_is_not_offered(lm, state):
             w.group == "recovery" and not w.is_finished for w in app.workers),
             what="the scan")
         await pilot.pause()
-        assert app.recovery_offered is None and not isinstance(app.screen, ConfirmDialog)
+        assert not isinstance(app.screen, ConfirmDialog)  # nothing offered
 
 
 def test_the_stepper_hands_every_snapshot_to_on_view_and_survives_its_failure(lm):

@@ -14,8 +14,10 @@ import time
 import pytest
 
 from tui.session.views import EngineError, PaneView, SessionView
+from tui.workbench.operations import Call
 from tui.workbench.stepper import (
     Failed,
+    StepFailed,
     OperationDone,
     RunChanged,
     Stepped,
@@ -124,8 +126,8 @@ def test_pause_takes_effect_after_the_step_under_way(harness):
 def test_operations_run_between_steps_in_order(harness):
     h = harness()
     order: list[str] = []
-    h.stepper.submit("a", lambda e: order.append(f"a@{e.n}") or "A")
-    h.stepper.submit("b", lambda e: order.append(f"b@{e.n}") or "B")
+    h.stepper.submit(Call("a", lambda e: order.append(f"a@{e.n}") or "A"))
+    h.stepper.submit(Call("b", lambda e: order.append(f"b@{e.n}") or "B"))
     h.stepper.step_once()
     h.wait(lambda: h.stepper.idle and h.engine.n == 1)
     assert order == ["a@0", "b@0"]
@@ -140,7 +142,7 @@ def test_a_failing_operation_is_reported_and_the_loop_goes_on(harness):
     def bad(engine):
         raise EngineError("a session holds at most 8 panes")
 
-    h.stepper.submit("fork", bad)
+    h.stepper.submit(Call("fork", bad))
     h.stepper.step_once()
     h.wait(lambda: h.stepper.idle and h.engine.n == 1)
     failed = [e for e in h.events if isinstance(e, Failed)]
@@ -152,7 +154,7 @@ def test_a_failing_step_pauses_and_rewinds_to_the_step_before(harness):
     h.stepper.run()
     h.wait(lambda: h.stepper.idle and any(isinstance(e, Failed) for e in h.events))
     failed = next(e for e in h.events if isinstance(e, Failed))
-    assert failed.label == "step" and failed.message == "out of memory"
+    assert isinstance(failed, StepFailed) and failed.message == "out of memory"
     assert h.engine.rewinds == [3] and h.engine.n == 3
     assert RunChanged(False, "a step failed") in h.events
     assert not h.stepper.running

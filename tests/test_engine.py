@@ -157,6 +157,53 @@ def test_fork_continues_from_the_source(lm):
     assert v[other].origin == (0, 5)
 
 
+def test_a_fork_before_the_present_step_is_the_fork_made_back_then(lm):
+    # Reference: the same session forked when it stood at step 3 (the present-step fork,
+    # a separate code path that copies the live row). Forking at step 3 from step 8 must
+    # give the same tokens and probabilities: the cache row is the source's, cropped.
+    ref = make(lm, ["temperature=1.0", "top_k=3"])
+    run(ref, 3)
+    ref_fork = ref.fork(0, "temperature=0.7 top_p=0.8", "back then")
+    run(ref, 5)
+    e = make(lm, ["temperature=1.0", "top_k=3"])
+    run(e, 8)
+    fork = e.fork(0, "temperature=0.7 top_p=0.8", "later", at=3)
+    got = {p.id: p for p in e.view().panes}[fork]
+    want = {p.id: p for p in ref.view().panes}[ref_fork]
+    assert got.origin == (0, 3) and len(got.records) == 8 == e.step_index
+    assert [r.token_id for r in got.records] == [r.token_id for r in want.records]
+    assert [r.final_prob for r in got.records] == pytest.approx(
+        [r.final_prob for r in want.records], abs=1e-6)
+    assert got.recipe_log == ((0, "temperature=1"), (3, "temperature=0.7 top_p=0.8"))
+    run(e, 2)  # and it steps on in the batch with the others
+    assert all(len(p.records) == 10 for p in e.view().panes)
+    assert [r.token_id for r in e.view().panes[0].records[:8]] == \
+        [r.token_id for r in ref.view().panes[0].records]
+
+
+def test_a_fork_at_step_0_or_of_a_stopped_pane_before_its_stop(lm):
+    e = make(lm, ["greedy", "temperature=1.0"])
+    run(e, 4)
+    first = e.fork(1, "greedy", at=0)  # from the prompt: greedy from the start
+    assert [r.token_id for r in {p.id: p for p in e.view().panes}[first].records] == \
+        [r.token_id for r in e.view().panes[0].records]
+    with pytest.raises(EngineError, match="no step 9"):
+        e.fork(0, "greedy", at=9)
+    # every pane stopped at the length limit: the parked row is cropped
+    ref = make(lm, ["temperature=1.0"], max_new=6)
+    run(ref, 2)
+    ref_fork = ref.fork(0, "top_k=2")
+    run(ref, 4)
+    done = make(lm, ["temperature=1.0"], max_new=6)
+    run(done, 6)
+    assert done.view().finished
+    late = done.fork(0, "top_k=2", at=2)
+    got = {p.id: p for p in done.view().panes}[late]
+    want = {p.id: p for p in ref.view().panes}[ref_fork]
+    assert [r.token_id for r in got.records] == [r.token_id for r in want.records]
+    assert got.stop == want.stop == STOP_LENGTH
+
+
 def test_recipe_change_takes_effect_from_the_next_step(lm):
     e = make(lm, ["temperature=1.5"])
     run(e, 3)
@@ -327,3 +374,25 @@ def test_shared_draws_toggle_applies_from_the_next_step_and_survives_rewind(lm):
     e.rewind(6)
     run(e, 2)
     assert [p.records for p in e.view().panes] == [p.records for p in before.panes]
+
+
+def test_a_new_prompt_restarts_the_panes_as_a_fresh_session_on_it(lm):
+    # Reference: an engine opened on the new prompt from the start, with the same panes,
+    # seed and length limit. The edited session must write exactly what it writes.
+    other = "A second, different opening line"
+    ids = lm.encode_prompt(other, None)
+    fresh = Engine(runner_for(lm), lm.decode, ids,
+                   [PaneSpec("p0", "temperature=1.0"), PaneSpec("p1", "mirostat=3")],
+                   seed=5, max_new_tokens=6, eos_ids=(), max_context=lm.max_context)
+    run(fresh, 8)
+    e = make(lm, ["temperature=1.0", "mirostat=3"])
+    run(e, 4)
+    e.fork(0, "greedy")
+    e.remove_pane(2)
+    e.set_prompt(ids, max_new_tokens=6)
+    assert e.step_index == 0 and e.prompt_ids == tuple(ids)
+    run(e, 8)
+    assert tokens(e) == tokens(fresh)
+    assert all(p.stop == STOP_LENGTH for p in e.view().panes)  # the new length limit
+    with pytest.raises(EngineError, match="empty"):
+        e.set_prompt([], max_new_tokens=6)

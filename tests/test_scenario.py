@@ -98,3 +98,33 @@ def test_run_writes_a_transcript_that_reads_back(tmp_path, tiny_model_dir):
     stored = StoredSession.open(out_file)
     assert stored.steps == 3 and [p.recipe for p in stored.header.panes] == ["top_p=0.9"]
     assert f"transcript: {out_file}" in out.stderr
+
+
+def _roundtrip(sc, tmp_path):
+    from tui.files import write_atomic
+    from tui.session.scenario import scenario_toml
+
+    path = tmp_path / "saved.toml"
+    write_atomic(path, scenario_toml(sc))
+    return load_scenario(path)
+
+
+@pytest.mark.parametrize("name", ["harbour-town", "tea-shop", "planet-question", "captain-name"])
+def test_a_written_scenario_reads_back_the_same(name, tmp_path):
+    # the reader is the standard library's tomllib (TOML 1.0); equality is field by field
+    sc = load_scenario(find_scenario(name))
+    assert _roundtrip(sc, tmp_path) == sc
+
+
+def test_awkward_text_survives_the_round_trip(tmp_path):
+    from tui.session.scenario import PaneSpec, Scenario
+
+    sc = Scenario(title='quotes " and \\ back\\slash', note="tab\there",
+                  panes=(PaneSpec("a \u00e9\u4e2d \U0001F600", "greedy", seed=4),
+                         PaneSpec("b", "temperature=0.7 top_p=0.9")),
+                  messages=(("system", "line one\nline two\r\n"), ("user", "bell\x07 del\x7f")),
+                  model="smollm2-135m-instruct", max_new_tokens=33, seed=9,
+                  shared_draws=False, stop=("\n\n", "'''", '"""'))
+    assert _roundtrip(sc, tmp_path) == sc
+    plain = Scenario(title="t", panes=(PaneSpec("p", "greedy"),), prompt="one\n\ntwo ")
+    assert _roundtrip(plain, tmp_path) == plain

@@ -78,6 +78,26 @@ def test_header_fields_this_version_does_not_know_are_kept(tmp_path):
     assert session.header.extra == {"note": "from a later minor writer"}
 
 
+def test_prompt_edits_read_back_and_a_file_without_them_reads_as_none(tmp_path):
+    from dataclasses import replace
+
+    from tui.session.scenario import EarlierSetup
+
+    earlier = (EarlierSetup(7, "Once", (), 40, ("\n",)),
+               EarlierSetup(0, None, (("system", "Be brief."), ("user", "Hi")), 12, ()))
+    head = replace(sample_header(), prompt_edits=earlier)
+    objs = sample_lines()
+    objs[0] = head.to_json()
+    assert objs[0]["prompt_edits"][1]["prompt"]["messages"][0] == \
+        {"role": "system", "content": "Be brief."}
+    session = StoredSession.open(write_objects(tmp_path / "e.jsonl", objs))
+    assert session.header.prompt_edits == earlier and session.header.extra == {}
+    assert StoredSession.open(write_sample(tmp_path / "old.jsonl")).header.prompt_edits == ()
+    objs[0]["prompt_edits"][0]["steps"] = -1
+    with pytest.raises(TranscriptError, match="prompt_edits\\[0\\].steps"):
+        StoredSession.open(write_objects(tmp_path / "bad.jsonl", objs))
+
+
 def _corrupt(objs: list[dict], case: str) -> tuple[list[dict] | bytes, int, str]:
     """(file content, the line the error names, words the reason must contain)."""
     if case == "bad json":

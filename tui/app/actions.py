@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import random
 from pathlib import Path
-from typing import TYPE_CHECKING, Any, Callable
+from typing import TYPE_CHECKING, Any
 
 from textual import work
 from textual.binding import Binding
@@ -23,14 +23,27 @@ from tui.app.safe_text import shown_line
 from tui.app.save_dialog import SaveDialog, default_path
 from tui.app.token_pane import TokenPane
 from tui.session.parting import fork_name
+from tui.workbench.operations import (
+    AddPane,
+    EditPrompt,
+    EditRecipe,
+    Force,
+    Fork,
+    Operation,
+    RemovePane,
+    Restart,
+    Rewind,
+    SetDraws,
+)
 
 if TYPE_CHECKING:
     from tui.app.app import LogitforkApp
-    from tui.session.engine import Engine
+    from tui.session.views import SessionView
 
 CHANGES = frozenset({"run_pause", "one_step", "fork", "edit", "add_pane", "remove_pane",
-                     "rewind", "toggle_draws", "reseed", "save"})
-ON_PANES = CHANGES | {"cursor", "cursor_to", "inspect", "next_pane"}
+                     "rewind", "toggle_draws", "reseed", "save", "edit_prompt"})
+ON_PANES = CHANGES | {"cursor", "cursor_to", "inspect", "next_pane", "copy_text"}
+TO_CLIPBOARD, TO_FILE = "c", "f"
 ANYWHERE = frozenset({"run_pause"})
 
 
@@ -38,6 +51,23 @@ def check_seed(text: str) -> str | None:
     if not (text.isascii() and text.isdigit()):  # str.isdigit alone takes "²", which int() refuses
         return f"the seed must be a whole number >= 0, got {text!r}"
     return None
+
+
+def rewind_question(view: "SessionView", step: int) -> str:
+    """What a rewind to `step` throws away, asked before it does."""
+    dropped = sum(max(0, len(p.records) - step) for p in view.panes)
+    forced = sum(1 for p in view.panes for r in p.records[step:] if r.forced)
+    edits = sum(1 for p in view.panes for s, _r in p.recipe_log if s > step and
+                not (p.origin is not None and s == p.origin[1]))
+    parts = [f"{dropped} token{'s' if dropped != 1 else ''} from step {step} on in "
+             f"{sum(1 for p in view.panes if len(p.records) > step)} pane(s)"]
+    if forced:
+        parts.append(f"{forced} forced token{'s' if forced != 1 else ''}")
+    what = " and ".join(parts)
+    moved = (f" {edits} recipe change{'s' if edits != 1 else ''} made for a later step "
+             f"will apply from step {step} on." if edits else "")
+    return f"Rewind to step {step} (steps 0-{step - 1} stay)? This throws away {what}.{moved}" \
+        if step else f"Rewind to the prompt? This throws away {what}.{moved}"
 
 
 class SessionActions:
@@ -53,24 +83,29 @@ class SessionActions:
             return None
         return True
 
-    def submit(self: "LogitforkApp", label: str, operation: Callable[[Engine], Any]) -> None:
+    def submit(self: "LogitforkApp", operation: Operation) -> None:
         """Queue engine work on the worker; the top bar shows it until it is done."""
         if self.stepper is None:
             return
-        self.busy.append(label)
-        self.stepper.submit(label, operation)
+        self.busy.append(operation)
+        self.stepper.submit(operation)
         self.schedule_redraw()
 
-    def after_operation(self: "LogitforkApp", label: str, result: Any) -> None:
+    def after_operation(self: "LogitforkApp", operation: Operation, result: Any) -> None:
         """Follow-ups on the app's side once an operation is done."""
-        if label in ("fork", "add") and isinstance(result, int):
+        if isinstance(operation, (Fork, AddPane)) and isinstance(result, int):
             self.focus_wanted = result  # focused once the redraw has mounted it
-        elif label == "force":
+        elif isinstance(operation, Force):
             self.follow = True
             if self.view is not None:
                 self.cursor = self.view.step
-        elif label == "restart":
+        elif isinstance(operation, (Restart, EditPrompt)):
             self.follow, self.cursor = True, 0
+            if self.source is not None and self.source.prompt_text != self.grid.prompt:
+                self.grid.prompt = self.source.prompt_text  # an edited prompt
+                for widget in self.grid.panes():
+                    widget.prompt = self.source.prompt_text
+                self.show_scenario(self.source)
 
     # ----- running and the cursor ---------------------------------------------------
 
@@ -154,7 +189,8 @@ class SessionActions:
         rows = [(self.get_key_display(b), b.tooltip or b.description)
                 for b in self.BINDINGS if isinstance(b, Binding)]  # the key bar's hidden ones too
         rows.append(("escape", "close a view or dialog"))
-        self.push_screen(HelpScreen(rows, self.scheme))
+        scenario = (self.source.title, self.source.note) if self.source else ("", "")
+        self.push_screen(HelpScreen(rows, self.scheme, scenario))
 
     # ----- changing the session -------------------------------------------------------
 
@@ -163,18 +199,22 @@ class SessionActions:
         if pane is None or pane.pane is None or self.view is None:
             return
         src = pane.pane
-        if src.stop is not None:
-            self.notify(f"{shown_line(src.name)} has stopped ({src.stop}); rewind before its "
-                        "last step to fork it", severity="warning", markup=False)
+        at = min(self.cursor, len(src.records))  # at the cursor: the text the pane shows
+        if at == len(src.records) and src.stop is not None:
+            self.notify(f"{shown_line(src.name)} has stopped ({src.stop}); move the cursor "
+                        "back (\u2190) to fork it before its last step", severity="warning",
+                        markup=False)
             return
 
         def done(choice: RecipeChoice | None) -> None:
             if choice is not None:
-                self.submit("fork", lambda e: e.fork(src.id, choice.recipe, choice.name))
+                self.submit(Fork(src.id, choice.recipe, choice.name, at))
 
-        title = f"Fork {shown_line(src.name)} at step {len(src.records)}: the new pane's recipe"
-        name = fork_name(src.name, [p.name for p in self.view.panes])  # greedy/1, greedy/1.1
-        self.push_screen(RecipeDialog(title, src.recipe, name=name), done)
+        later = (f"; it catches up to step {self.view.step - 1}" if at < self.view.step
+                 else "")
+        title = (f"Fork {shown_line(src.name)} at step {at}: the new pane's recipe, from "
+                 f"step {at} on{later}")
+        self.push_screen(RecipeDialog(title, src.recipe, name=fork_name(src.name, [p.name for p in self.view.panes])), done)
 
     def action_edit(self: "LogitforkApp") -> None:
         pane = self.focused_pane()
@@ -184,10 +224,10 @@ class SessionActions:
 
         def done(choice: RecipeChoice | None) -> None:
             if choice is not None and choice.recipe != src.recipe:
-                self.submit("edit", lambda e: e.set_recipe(src.id, choice.recipe))
+                self.submit(EditRecipe(src.id, choice.recipe))
 
         title = (f"Recipe of {shown_line(src.name)} from step {len(src.records)} on "
-                 "(earlier tokens stay)")
+                 "(earlier steps stay)")
         self.push_screen(RecipeDialog(title, src.recipe), done)
 
     def action_add_pane(self: "LogitforkApp") -> None:
@@ -198,9 +238,10 @@ class SessionActions:
 
         def done(choice: RecipeChoice | None) -> None:
             if choice is not None:
-                self.submit("add", lambda e: e.add_pane(choice.recipe, choice.name))
+                self.submit(AddPane(choice.recipe, choice.name))
 
-        title = f"A new pane from the prompt (it catches up to step {self.view.step})"
+        title = (f"A new pane from the prompt (it catches up to step {self.view.step - 1})"
+                 if self.view.step else "A new pane from the prompt")
         self.push_screen(RecipeDialog(title, recipe, name=f"pane {len(self.view.panes) + 1}"),
                          done)
 
@@ -215,7 +256,7 @@ class SessionActions:
 
         def done(answer: str | None) -> None:
             if answer == "y":
-                self.submit("remove", lambda e: e.remove_pane(pane_id))
+                self.submit(RemovePane(pane_id))
                 self.call_after_refresh(self.action_next_pane)
 
         self.push_screen(ConfirmDialog(f"Remove the pane {name!r} and its text?",
@@ -229,15 +270,21 @@ class SessionActions:
             self.notify("the cursor is at the end: move it back (\u2190, home) to rewind",
                         markup=False)
             return
-        self.stepper.pause()
-        self.follow = True
-        self.submit("rewind", lambda e: e.rewind(step))
+
+        def done(answer: str | None) -> None:
+            if answer == "y" and self.stepper is not None:
+                self.stepper.pause()
+                self.follow = True
+                self.submit(Rewind(step))
+
+        self.push_screen(ConfirmDialog(rewind_question(self.view, step),
+                                       [("y", "rewind"), ("n", "keep")]), done)
 
     def action_toggle_draws(self: "LogitforkApp") -> None:
         if self.view is None:
             return
         shared = not self.view.shared_draws
-        self.submit("draws", lambda e: e.set_shared_draws(shared))
+        self.submit(SetDraws(shared))
 
     def action_reseed(self: "LogitforkApp") -> None:
         def done(text: str | None) -> None:
@@ -245,12 +292,54 @@ class SessionActions:
                 seed = int(text)
                 if self.stepper is not None:
                     self.stepper.pause()
-                self.submit("restart", lambda e: e.restart(seed))
+                self.submit(Restart(seed))
 
         self.push_screen(InputDialog("Restart from the prompt with the seed",
                                      str(random.randrange(10**6)), check=check_seed,
                                      hint="Every pane goes back to the prompt; recipes stay."),
                          done)
+
+    def action_edit_prompt(self: "LogitforkApp") -> None:
+        from dataclasses import replace
+
+        from tui.app.scenario_dialog import RESTART, EditedScenario, ScenarioDialog
+        from tui.session.scenario import PaneSpec
+        from tui.workbench.source import LiveSource
+
+        source, view = self.source, self.view
+        if not isinstance(source, LiveSource) or view is None:
+            return
+        now = replace(source.info.scenario, seed=view.seed, shared_draws=view.shared_draws,
+                      panes=tuple(PaneSpec(p.name, p.recipe, p.seed) for p in view.panes))
+        stem = now.path.stem if now.path is not None else "session"
+        path = (self.save_folder or Path(".")) / f"{stem}-edited.toml"
+
+        def done(answer: EditedScenario | None) -> None:
+            if answer is None:
+                return
+            if answer.action != RESTART:
+                if answer.path is not None:
+                    self._write_scenario(answer.path, answer.scenario)
+                return
+            if self.stepper is not None:
+                self.stepper.pause()
+            self.submit(EditPrompt(source, answer.scenario, self.recovery))
+
+        self.push_screen(ScenarioDialog(now, path), done)
+
+    @work(thread=True, exclusive=False, exit_on_error=False, group="save")
+    def _write_scenario(self: "LogitforkApp", path: Path, scenario: Any) -> None:
+        from tui.files import write_atomic
+        from tui.session.scenario import scenario_toml
+
+        try:
+            write_atomic(path, scenario_toml(scenario))
+        except OSError as exc:
+            self.call_from_thread(self.notify, f"could not save {path}: "
+                                  f"{exc.strerror or exc}", severity="error", markup=False)
+            return
+        self.call_from_thread(self.notify, f"saved the scenario to {path} (open it with "
+                              f"`logitfork watch {path}`)", markup=False)
 
     def force_token(self: "LogitforkApp", pane_id: int, step: int, token_id: int) -> None:
         """Force a token at a step, then run the session back to where it was."""
@@ -259,11 +348,50 @@ class SessionActions:
         back_to = self.view.step
         self.stepper.pause()
 
-        def operation(engine: Engine) -> None:
-            engine.force(pane_id, step, token_id)
-
-        self.submit("force", operation)
+        self.submit(Force(pane_id, step, token_id))
         self.stepper.run(until=max(back_to, step + 1))
+
+    # ----- copying a pane's text ---------------------------------------------------------
+
+    def action_copy_text(self: "LogitforkApp") -> None:
+        pane = self.focused_pane()
+        if pane is None or pane.pane is None:
+            return
+        name = pane.pane.name
+        text = "".join(r.text for r in pane.pane.records[:self.cursor])
+        if not text:
+            self.notify(f"{shown_line(name)} has no text up to the cursor yet", markup=False)
+            return
+
+        def done(answer: str | None) -> None:
+            if answer == TO_CLIPBOARD:
+                self.copy_to_clipboard(text)  # OSC 52: the terminal may ignore it silently
+                self.notify(f"sent {len(text)} characters of {shown_line(name)} to the "
+                            "clipboard (OSC 52); if nothing arrives, your terminal does not "
+                            "allow it: copy to a file instead (c, then f)", timeout=8,
+                            markup=False)
+            elif answer == TO_FILE:
+                stem = self.source.scenario_name if self.source is not None else "session"
+                path = default_path(f"{stem}-{name}", self.view.seed if self.view else 0,
+                                    folder=self.save_folder).with_suffix(".txt")
+                self._write_text(path, text)
+
+        self.push_screen(ConfirmDialog(
+            f"Copy the text of {name!r} up to the cursor ({len(text)} characters)?",
+            [(TO_CLIPBOARD, "to the clipboard"), (TO_FILE, "to a file"), ("n", "cancel")]),
+            done)
+
+    @work(thread=True, exclusive=False, exit_on_error=False, group="save")
+    def _write_text(self: "LogitforkApp", path: Path, text: str) -> None:
+        from tui.files import write_atomic
+
+        try:
+            write_atomic(path, text)
+        except OSError as exc:
+            self.call_from_thread(self.notify, f"could not write {path}: "
+                                  f"{exc.strerror or exc}", severity="error", markup=False)
+            return
+        self.call_from_thread(self.notify, f"wrote the text to {path}", markup=False)
 
     # ----- saving and quitting -----------------------------------------------------------
 
@@ -308,6 +436,7 @@ class SessionActions:
             if answer == "s":
                 self.action_save(then_quit=True)
             elif answer == "d":
+                self.discarded = True  # thrown away on purpose: no recovery log either
                 self.exit()
 
         self.push_screen(ConfirmDialog("The session has unsaved steps. Save a transcript "

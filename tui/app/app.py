@@ -15,11 +15,13 @@ from __future__ import annotations
 from pathlib import Path
 from typing import TYPE_CHECKING
 
+from rich.text import Text
 from textual import events, on, work
 from textual.app import App, ComposeResult
 from textual.binding import Binding
 from textual.filter import Monochrome
 from textual.message import Message
+from textual.widgets import Static
 from textual.worker import get_current_worker
 
 from tui.app.actions import CHANGES, SessionActions
@@ -29,6 +31,7 @@ from tui.app.legend import Legend
 from tui.app.loading_panel import LoadingPanel
 from tui.app.pane_grid import PaneGrid
 from tui.app.recovery_offer import RecoveryActions
+from tui.app.safe_text import shown_line
 from tui.app.token_pane import TokenPane
 from tui.app.top_bar import BarState, TopBar
 from tui.progress import ProgressEvent
@@ -39,15 +42,16 @@ from tui.workbench.stepper import (
     Failed,
     OperationDone,
     RunChanged,
+    StepFailed,
     Stepped,
     Stepper,
     StepperEvent,
 )
+from tui.workbench.operations import Operation
 
 if TYPE_CHECKING:
     from tui.token_style import Depth
     from tui.transcripts.recovery_log import RecoveryLog
-    from tui.transcripts.recovery_reader import RecoverySummary
 
 REDRAW_SECONDS = 1 / 30  # the panes redraw at most this often, however fast steps come
 RATE_SMOOTHING = 0.3  # weight of the newest step in the steps-per-second average
@@ -73,21 +77,30 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
                 "steps)"),
         Binding("enter", "inspect", "inspect", key_display="\u23ce", tooltip="inspect the "
                 "focused pane at the cursor (or click a token)"),
-        Binding("tab", "next_pane", "next pane", tooltip="focus the next pane"),
-        Binding("shift+tab", "next_pane(-1)", "previous pane", show=False,
+        # priority: ahead of the screen's own tab (focus_next, hidden from the key bar);
+        # in a dialog the action is off, and tab moves between its fields as usual
+        Binding("tab", "next_pane", "pane", priority=True,
+                tooltip="focus the next pane (the keys act on the focused pane)"),
+        Binding("shift+tab", "next_pane(-1)", "previous pane", show=False, priority=True,
                 tooltip="focus the previous pane"),
-        Binding("f", "fork", "fork", tooltip="fork the focused pane at the present step "
-                "into a new pane, with a recipe you give"),
+        Binding("f", "fork", "fork", tooltip="fork the focused pane at the cursor into a new "
+                "pane, with a recipe you give (it catches up to the present step)"),
         Binding("e", "edit", "edit", tooltip="edit the focused pane's recipe (from the "
                 "next step on)"),
         Binding("a", "add_pane", "add", tooltip="add a pane that decodes from the prompt "
                 "(it catches up at once)"),
         Binding("x", "remove_pane", "remove", tooltip="remove the focused pane (asks first)"),
-        Binding("r", "rewind", "rewind", tooltip="rewind the session to the cursor"),
+        Binding("r", "rewind", "rewind", tooltip="rewind the session to the cursor (asks "
+                "first, saying what it throws away)"),
         Binding("d", "toggle_draws", "draws", tooltip="shared draws on or off: the same "
                 "uniform number for every pane at a step"),
         Binding("S", "reseed", "seed", tooltip="restart from the prompt with a new seed"),
+        Binding("p", "edit_prompt", "prompt", tooltip="edit the prompt (text or chat), the "
+                "length limit and the stop strings: the session restarts from the new "
+                "prompt; or save the scenario as a TOML file"),
         Binding("w", "save", "save", tooltip="save the transcript (JSON Lines)"),
+        Binding("c", "copy_text", "copy", tooltip="copy the focused pane's text up to the "
+                "cursor: to the clipboard (where the terminal allows) or to a file"),
         Binding("question_mark", "help", "help", key_display="?", tooltip="this help"),
         Binding("q", "quit_app", "quit", tooltip="quit (asks to save an unsaved session)"),
     ]
@@ -119,7 +132,6 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
         self.keep_recovery = recovery  # keep a crash-recovery log, offer leftover ones
         self.recovery: RecoveryLog | None = None
         self.recovery_told = False  # the log's failure was told
-        self.recovery_offered: RecoverySummary | None = None
         # the terminal's colour depth, as Rich found it (tests and --mono may pin it)
         no_colour = mono or self.no_color
         self.scheme = Scheme("mono" if no_colour else depth or console_depth(self.console))
@@ -134,9 +146,9 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
         self.follow = True  # the cursor moves with new steps
         self.version = 0  # counts changes to the session, for "unsaved"
         self.saved_version = 0
-        self.busy: list[str] = []  # operations queued or under way
+        self.discarded = False  # the user quit without saving: the session is thrown away
+        self.busy: list[Operation] = []  # operations queued or under way
         self.steps_per_second: float | None = None
-        self.frozen_rate: float | None = None  # tests: show this rate instead (0 = none)
         self.error_message: str | None = None  # set when the model failed to load
         self.redraw_due = False
         self.focus_wanted: int | None = None  # a new pane to focus once it is mounted
@@ -146,6 +158,7 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
 
     def compose(self) -> ComposeResult:
         yield TopBar(id="top-bar")
+        yield Static(Text(), id="scenario-line")
         if self._loader is not None:
             yield LoadingPanel(self._loader.model_name, id="loading")
         yield self.grid
@@ -164,6 +177,7 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
     def _start(self, source: SessionSource) -> None:
         self.source = source
         self.grid.prompt = source.prompt_text
+        self.show_scenario(source)
         self.view = source.first_view()
         self.cursor = self.view.step
         if source.engine is not None:
@@ -176,6 +190,13 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
         for note in getattr(source, "notes", ()):
             self.notify(note, timeout=8, markup=False)
         self.call_after_refresh(self._focus_first_pane)
+
+    def show_scenario(self, source: SessionSource) -> None:
+        """The scenario's title and note, on the line under the top bar."""
+        line = Text(shown_line(source.title), style="bold")
+        if source.note:
+            line.append("  \u2014  " + shown_line(source.note), style="italic")
+        self.grid.screen.query_one("#scenario-line", Static).update(line)
 
     def _focus_first_pane(self) -> None:
         panes = self.grid.panes()
@@ -234,15 +255,15 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
             old = self.steps_per_second
             self.steps_per_second = rate if old is None else old + RATE_SMOOTHING * (rate - old)
         elif isinstance(event, OperationDone):
-            self._finish_operation(event.label)
+            self._finish_operation(event.operation)
             self._take_view(event.view)
-            self.after_operation(event.label, event.result)
+            self.after_operation(event.operation, event.result)
         elif isinstance(event, Failed):
-            if event.label != "step":
-                self._finish_operation(event.label)
+            if event.operation is not None:
+                self._finish_operation(event.operation)
             if event.view is not None:
                 self._take_view(event.view)
-            if event.label == "step":
+            if isinstance(event, StepFailed):
                 text = f"a step failed: {event.message}. The session is paused and unchanged."
             else:
                 text = f"{event.label} failed: {event.message}"
@@ -254,9 +275,9 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
             self._recovery_failed()
         self.schedule_redraw()
 
-    def _finish_operation(self, label: str) -> None:
-        if label in self.busy:
-            self.busy.remove(label)
+    def _finish_operation(self, operation: Operation) -> None:
+        if operation in self.busy:
+            self.busy.remove(operation)
 
     def _take_view(self, view: SessionView) -> None:
         if self.view is not None and view == self.view:
@@ -278,14 +299,14 @@ class LogitforkApp(SessionActions, RecoveryActions, App[int]):
     def redraw(self) -> None:
         self.redraw_due = False
         view = self.view
-        rate = self.steps_per_second if self.frozen_rate is None else self.frozen_rate
+        rate = self.steps_per_second
         running = self.stepper.running if self.stepper else False
         state = BarState(
             model=self.source.model_name if self.source else
             (self._loader.model_name if self._loader else ""),
             seed=view.seed if view else None,
             shared_draws=view.shared_draws if view else None,
-            steps_per_second=rate, running=running, busy=", ".join(self.busy),
+            steps_per_second=rate, running=running, busy=", ".join(op.label for op in self.busy),
             step=view.step if view else 0, cursor=self.cursor,
             read_only=self.source is not None and self.source.engine is None,
             loading=self.source is None, mode=getattr(self.source, "label", "read-only"),

@@ -1,4 +1,4 @@
-"""The help screen: every key with what it does, the colour scheme, and the caution."""
+"""The help screen: the scenario, every key, the recipe stages, the colours, the caution."""
 
 from __future__ import annotations
 
@@ -12,6 +12,8 @@ from textual.widgets import Static
 
 from tui.app.colouring import FINAL_BANDS, FORCED_MARK, RANK_BANDS, Scheme
 from tui.token_style import EDIT_MARK, FORK_MARK, PART_MARK
+from tui.app.recipe_help import stage_table
+from tui.app.safe_text import shown_line
 
 CAUTION = ("Generated text is raw model output: it can be false, biased or offensive, and it "
            "is not filtered. Check any setting chosen here on your own data before use.")
@@ -73,17 +75,29 @@ class HelpScreen(ModalScreen[None]):
 
     BINDINGS = [Binding("escape", "close", "close"), Binding("question_mark", "close", "close")]
 
-    def __init__(self, main_keys: list[tuple[str, str]], scheme: Scheme) -> None:
+    def __init__(self, main_keys: list[tuple[str, str]], scheme: Scheme,
+                 scenario: tuple[str, str] = ("", "")) -> None:
         super().__init__(classes="dialog-screen")
         self.main_keys = main_keys
         self.scheme = scheme
+        self.scenario = scenario  # (title, note) of the session shown
 
     def compose(self) -> ComposeResult:
         with VerticalScroll(classes="dialog help"):
+            title, note = self.scenario
+            if title:
+                yield Static(Text(shown_line(title), style="bold"), id="help-title")
+                if note:
+                    yield Static(Text(shown_line(note), style="italic"), id="help-note")
+                yield Static(Text())
             yield Static(Text("logitfork: keys", style="bold"))
             yield Static(keys_table(self.main_keys))
             yield Static(Text("In the inspect view", style="bold"))
             yield Static(keys_table(list(INSPECT_KEYS)))
+            yield Static(Text("Recipes: stages apply in the order written, e.g. "
+                              "`repetition_penalty=1.2 temperature=0.8 top_p=0.9`",
+                              style="bold"))
+            yield Static(stage_table(), id="help-stages")
             yield Static(Text("Colours", style="bold"))
             yield Static(scheme_text(self.scheme))
             yield Static(Text("\n" + CAUTION, style="bold"), id="caution")

@@ -45,21 +45,31 @@ class InputDialog(ModalScreen[str | None]):
         with Vertical(classes="dialog"):
             yield Static(Text(self.title_text, style="bold"), classes="dialog-title")
             yield from self.extra_fields()
-            yield Input(self.initial, id="dialog-value", select_on_focus=False)
+            yield self.value_field()
             yield Static(Text(), id="dialog-error", classes="dialog-error")
             if self.hint:
                 yield Static(Text(self.hint), classes="dialog-hint")
             with Horizontal(classes="dialog-buttons"):
                 yield Button(self.ok_label, variant="primary", id="dialog-ok")
                 yield Button("Cancel", id="dialog-cancel")
+            yield from self.below()
 
     def extra_fields(self) -> ComposeResult:
+        """Fields above the value's (none here)."""
+        return iter(())
+
+    def value_field(self) -> Input:
+        return Input(self.initial, id="dialog-value", select_on_focus=False)
+
+    def below(self) -> ComposeResult:
+        """What shows under the buttons (nothing here)."""
         return iter(())
 
     def on_mount(self) -> None:
-        field = self.query_one("#dialog-value", Input)
-        field.focus()
-        field.cursor_position = len(field.value)
+        """Focus the first field, so that Tab walks the fields in the order shown."""
+        for field in self.query(Input):
+            field.cursor_position = len(field.value)
+        self.query(Input).first().focus()
 
     @property
     def error(self) -> str:

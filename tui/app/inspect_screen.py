@@ -169,7 +169,7 @@ class InspectScreen(Screen[tuple[int, int, int] | None]):
     def _title(self, width: int = 200) -> Text:
         """One line: the pane, the step and its recipe, cut between items with "…"."""
         room = max(width - 2, 20)
-        where = f"  step {self.step + 1} of {len(self.pane.records)}  recipe "
+        where = f"  step {self.step} of 0-{len(self.pane.records) - 1}  recipe "
         name = cut_items(shown_line(self.pane.name), max(room // 3, 8))
         text = Text("Inspect ", style="bold")
         text.append(name, style="bold")
@@ -437,9 +437,9 @@ class InspectScreen(Screen[tuple[int, int, int] | None]):
         if row.chosen:
             self.notify("that is the token chosen here already", markup=False)
             return
-        forward = f"; every pane runs again to step {self.view.step}" if self.view.step > \
+        forward = f"; every pane runs again to step {self.view.step - 1}" if self.view.step > \
             self.step + 1 else ""
-        question = (f"Force {shown_token(row.text)} (rank {row.rank}) at step {self.step + 1} "
+        question = (f"Force {shown_token(row.text)} (rank {row.rank}) at step {self.step} "
                     f"of {self.pane.name}? The session rewinds to that step{forward}; the "
                     "other panes draw the same numbers and write the same text again.")
         token = row.token_id

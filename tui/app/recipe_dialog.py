@@ -1,8 +1,9 @@
 """The recipe dialog: fork, add a pane or edit a recipe; a RecipeError keeps it open.
 
 The recipe text is parsed with `Recipe.parse` before the dialog closes, so an invalid
-recipe never reaches the engine: the error's one line shows under the field and the
-session is left as it was.
+recipe never reaches the engine: the error shows under the field, with the listing
+line of the stage it is about, and the session is left as it was. Under the buttons
+the dialog lists every stage (from `tui.decoding.STAGES`), and stage names complete.
 """
 
 from __future__ import annotations
@@ -11,13 +12,16 @@ from dataclasses import dataclass
 
 from rich.text import Text
 from textual.app import ComposeResult
+from textual.containers import VerticalScroll
 from textual.widgets import Input, Static
 
 from tui.app.input_dialog import InputDialog
+from tui.app.recipe_help import StageNames, explain, stage_table
 from tui.app.safe_text import shown_line
 
-RECIPE_HINT = ("Stages in order, separated by spaces, e.g. `temperature=0.8 top_p=0.9`, "
-               "`greedy`, `top_k=40 temperature=1.2`. Enter to accept, Escape to cancel.")
+RECIPE_HINT = ("Stages apply in the order written, separated by spaces, e.g. "
+               "`temperature=0.8 top_p=0.9`. A stage name completes as you type (\u2192 takes "
+               "it). Enter to accept, Escape to cancel. The stages:")
 
 
 @dataclass(frozen=True)
@@ -37,7 +41,7 @@ def check_recipe(text: str) -> str | None:
     try:
         Recipe.parse(text)
     except RecipeError as exc:
-        return str(exc)
+        return explain(text, str(exc))
     return None
 
 
@@ -54,6 +58,15 @@ class RecipeDialog(InputDialog):
         super().__init__(title, recipe, hint=RECIPE_HINT, check=check_recipe)
         self.ask_name = name is not None
         self.initial_name = name or ""
+        self.add_class("recipe-dialog")
+
+    def value_field(self) -> Input:
+        return Input(self.initial, id="dialog-value", select_on_focus=False,
+                     suggester=StageNames())
+
+    def below(self) -> ComposeResult:
+        with VerticalScroll(id="stage-list", can_focus=False):
+            yield Static(stage_table())
 
     def extra_fields(self) -> ComposeResult:
         if self.ask_name:

@@ -4,7 +4,8 @@ When the app is asked to keep one (`make_app(..., recovery=True)`, as `watch` do
 live session is followed by a `tui.transcripts.recovery_log.RecoveryLog` in the user state folder:
 begun on the engine's worker when the session starts, synced by the `Stepper` after
 every step and operation, closed when the app ends. It is deleted on a clean exit with
-nothing unsaved (saved, or no steps), kept otherwise.
+nothing unsaved (saved, or no steps) and when the user quits without saving (discard),
+kept otherwise (a crash, a kill, an error exit).
 
 On start the app also looks for logs left by sessions that are no longer running and
 offers the newest: reopen it read-only (the app turns into a replay of it), keep it for
@@ -73,10 +74,12 @@ class RecoveryActions:
                         timeout=8, markup=False)
 
     def _close_recovery(self: "LogitforkApp") -> None:
-        """Keep the log unless the session has nothing unsaved and the app ends cleanly."""
+        """Keep the log unless the app ends cleanly with nothing unsaved, or the user
+        chose to quit without saving (then the session was thrown away on purpose)."""
         log, self.recovery = self.recovery, None
         if log is not None:
-            log.close(delete=not self.unsaved and self.return_code in (None, 0))
+            clean = self.return_code in (None, 0)
+            log.close(delete=clean and (self.discarded or not self.unsaved))
 
     # ----- the offer on start ------------------------------------------------------------
 
@@ -91,7 +94,6 @@ class RecoveryActions:
             self.call_from_thread(self._offer_recovery, found[0], len(found) - 1)
 
     def _offer_recovery(self: "LogitforkApp", found: "RecoverySummary", older: int) -> None:
-        self.recovery_offered = found
 
         def done(answer: str | None) -> None:
             if answer == REOPEN:

@@ -75,10 +75,11 @@ def status_text(records: Sequence[StepRecord], total: int, width: int = 200) -> 
     the short wording ("12/60 · k 40 · H 2.31") before anything is cut.
     """
     if not records:
-        return Text(cut_items("step 0 \u00b7 no tokens yet", width), style="dim")
+        return Text(cut_items("no tokens yet", width), style="dim")
     last = records[-1]
     lp = mean_logprob(r.logprob for r in records)
-    where = f"{len(records)}" + (f"/{total}" if total != len(records) else "")
+    # the last step shown, numbered from 0 as everywhere (transcripts, reports, inspect)
+    where = f"{len(records) - 1}" + (f"/{total - 1}" if total != len(records) else "")
     logp = f"{lp:.2f}" if math.isfinite(lp) else "-inf"
     full = [f"step {where}", f"kept {last.kept}", f"H {abs(last.final_entropy):.2f}",
             f"logp {logp}"]

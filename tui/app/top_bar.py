@@ -55,13 +55,14 @@ def bar_text(state: BarState) -> Text:
     if state.loading:
         return text
     rate = state.steps_per_second
-    if not state.read_only:  # a stored session is not stepped
-        text.append(f"  {rate:.1f} steps/s" if rate else "  - steps/s")
-        if rate and state.steps_left:
+    if state.running and rate:  # a rate is only news while steps come (and paused
+        text.append(f"  {rate:.1f} steps/s")  # screens stay the same from run to run)
+        if state.steps_left:
             text.append(f" ({time_text(state.steps_left / rate)} to the end)")
-    where = f"step {state.step}"
+    # counts of steps, not step numbers (those count from 0: the last of 12 steps is 11)
+    where = f"{state.step} step{'s' if state.step != 1 else ''}"
     if state.cursor != state.step:
-        where = f"cursor {state.cursor}/{state.step}"
+        where = f"cursor {state.cursor}/{state.step} steps"
     text.append(f"  {where}", style="bold")
     return text
 

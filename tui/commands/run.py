@@ -7,21 +7,15 @@ import statistics
 import sys
 import time
 
+from tui.commands.session_options import add_session_options
+
 
 def add_arguments(p: argparse.ArgumentParser) -> None:
-    p.add_argument("scenario", nargs="?", default=None,
-                   help="a scenario file, or the name of a shipped one (default: harbour-town)")
+    add_session_options(p)
     p.add_argument("--steps", type=int, default=None, metavar="N",
                    help="stop after N steps (default: the scenario's max_new_tokens)")
     p.add_argument("--out", default=None, metavar="FILE.jsonl|-",
                    help="write the transcript here ('-' for standard output)")
-    p.add_argument("--model", default=None, help="a catalogue name, a local folder or a .gguf")
-    p.add_argument("--seed", type=int, default=None, help="override the scenario's seed")
-    p.add_argument("--dtype", choices=("auto", "float32", "bfloat16"), default="auto",
-                   help="weights and activations (default auto: float32 unless the model is too "
-                   "big or too slow in it, then bfloat16)")
-    p.add_argument("--allow-pickle", action="store_true",
-                   help="allow pickled (.bin/.pt) weights; only for files you trust")
 
 
 def main(args: argparse.Namespace) -> int:
@@ -33,8 +27,6 @@ def main(args: argparse.Namespace) -> int:
     scenario = load_scenario(find_scenario(args.scenario))  # check the file before loading
     if args.steps is not None and args.steps < 1:
         raise UserError(f"--steps: must be at least 1, got {args.steps}")
-    if args.seed is not None and args.seed < 0:
-        raise UserError(f"--seed: must be >= 0, got {args.seed}")
 
     from tui.commands.progress_display import ProgressDisplay
     from tui.model.catalogue import DEFAULT_MODEL

@@ -37,12 +37,16 @@ _ITEM = re.compile(r"([A-Za-z_][A-Za-z0-9_]*)(?:=(.*)|\((.*)\))?", re.DOTALL)
 
 @dataclass(frozen=True, slots=True)
 class StageSpec:
-    """How one stage name is written: its value kind and an example for messages."""
+    """How one stage name is written: its value kind, an example for messages, the values
+    it accepts and what it does in one line (the app's recipe dialog and help list these;
+    tests/test_recipe_help.py checks `accepts` against the stage's own validation)."""
 
     name: str
     kind: str  # "real", "whole", "flag" or "params"
     make: Callable[..., Stage]
     example: str
+    accepts: str
+    meaning: str
     keys: tuple[str, ...] = ()  # parameter names for kind "params"; the first is the shorthand
     renamed: tuple[tuple[str, str], ...] = ()  # (old parameter name, new one), for messages
 
@@ -50,20 +54,36 @@ class StageSpec:
 STAGES: dict[str, StageSpec] = {
     spec.name: spec
     for spec in (
-        StageSpec("temperature", "real", Temperature, "temperature=0.8"),
-        StageSpec("top_k", "whole", TopK, "top_k=50"),
-        StageSpec("top_p", "real", TopP, "top_p=0.9"),
-        StageSpec("min_p", "real", MinP, "min_p=0.05"),
-        StageSpec("typical_p", "real", TypicalP, "typical_p=0.95"),
-        StageSpec("epsilon", "real", Epsilon, "epsilon=0.0003"),
-        StageSpec("eta", "real", Eta, "eta=0.0003"),
+        StageSpec("temperature", "real", Temperature, "temperature=0.8", ">= 0",
+                  "divide the logits by T: below 1 sharper, above 1 flatter, 0 is greedy"),
+        StageSpec("top_k", "whole", TopK, "top_k=50", "whole number >= 0",
+                  "keep the k most likely tokens (0 keeps all)"),
+        StageSpec("top_p", "real", TopP, "top_p=0.9", "(0, 1]",
+                  "keep the fewest most likely tokens whose probability adds up to p"),
+        StageSpec("min_p", "real", MinP, "min_p=0.05", "[0, 1]",
+                  "keep tokens at least min_p times as likely as the most likely one"),
+        StageSpec("typical_p", "real", TypicalP, "typical_p=0.95", "(0, 1]",
+                  "keep tokens whose surprise is closest to the entropy, up to mass p; "
+                  "can cut the most likely token"),
+        StageSpec("epsilon", "real", Epsilon, "epsilon=0.0003", "[0, 1)",
+                  "keep tokens with probability above epsilon"),
+        StageSpec("eta", "real", Eta, "eta=0.0003", "[0, 1)",
+                  "keep tokens above a threshold that falls as the entropy rises"),
         StageSpec("mirostat", "params", MirostatV2, "mirostat(tau=5,learning_rate=0.1)",
+                  "tau > 0, learning_rate > 0 (default 0.1)",
+                  "aim at a target surprise of tau bits per token, adapting the cut each step",
                   ("tau", "learning_rate"), renamed=(("eta", "learning_rate"),)),
-        StageSpec("repetition_penalty", "real", RepetitionPenalty, "repetition_penalty=1.2"),
-        StageSpec("presence_penalty", "real", PresencePenalty, "presence_penalty=0.5"),
-        StageSpec("frequency_penalty", "real", FrequencyPenalty, "frequency_penalty=0.5"),
-        StageSpec("no_repeat_ngram", "whole", NoRepeatNGram, "no_repeat_ngram=3"),
-        StageSpec("greedy", "flag", Greedy, "greedy"),
+        StageSpec("repetition_penalty", "real", RepetitionPenalty, "repetition_penalty=1.2",
+                  "> 0", "make tokens already in the text less likely: divide a positive "
+                  "logit by R, multiply a negative one"),
+        StageSpec("presence_penalty", "real", PresencePenalty, "presence_penalty=0.5",
+                  "any number", "subtract a fixed amount from tokens already in the text"),
+        StageSpec("frequency_penalty", "real", FrequencyPenalty, "frequency_penalty=0.5",
+                  "any number", "subtract the amount once per earlier use of the token"),
+        StageSpec("no_repeat_ngram", "whole", NoRepeatNGram, "no_repeat_ngram=3",
+                  "whole number >= 0", "ban tokens that would repeat an n-gram of the text"),
+        StageSpec("greedy", "flag", Greedy, "greedy", "no value",
+                  "keep only the most likely token"),
     )
 }
 

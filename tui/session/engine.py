@@ -265,31 +265,45 @@ class Engine:
         self._kv, self._pending = self.runner.step(kv, last)
 
     def fork(self, pane_id: int, recipe: Recipe | str, name: str | None = None, *,
-             stream: int | None = None) -> int:
-        """A new pane that shares `pane_id`'s text so far and decodes on with `recipe`
-        (`stream`: its draw stream, as in `__init__`)."""
+             stream: int | None = None, at: int | None = None) -> int:
+        """A new pane that shares `pane_id`'s first `at` tokens (default: all of them) and
+        decodes on with `recipe` (`stream`: its draw stream, as in `__init__`). Forked
+        before the present step, it catches up at once, as `add_pane` does."""
         with self._lock:
             source = self.pane(pane_id)
             if len(self._panes) >= MAX_PANES:
                 raise EngineError(f"a session holds at most {MAX_PANES} panes")
-            if pane_id not in self._live:
+            step = len(source.records) if at is None else at
+            if not 0 <= step <= len(source.records):
+                raise EngineError(f"pane {source.name!r} has no step {step} to fork at")
+            if step == len(source.records) and pane_id not in self._live:
                 raise EngineError(f"pane {source.name!r} has stopped ({source.stop}); rewind "
                                   "before its last step to fork it")
             recipe = Recipe.parse(recipe) if isinstance(recipe, str) else recipe
             pane = self._new_pane(name or f"{source.name} fork", recipe, None, stream)
-            step = len(source.records)
             pane.origin = (pane_id, step)
             pane.recipe_log = source.recipe_log.set_from(step, str(recipe))
-            pane.records = [replace(r, pane=pane.id) for r in source.records]
-            pane.samplers = [(r, s.copy()) for r, s in source.samplers]
+            pane.records = [replace(r, pane=pane.id) for r in source.records[:step]]
+            pane.samplers = [(r, s.copy()) for r, s in source.samplers[:step]]
             self._panes.append(pane)
-            row = self._live.index(pane_id)
-            self._kv = KV.join([self._kv, self._kv.select([row])])
-            self._pending = torch.cat([self._pending, self._pending[row:row + 1]])
-            self._live.append(pane.id)
             for (pid, s), lg in list(self._logits.items()):
-                if pid == pane_id:
+                if pid == pane_id and s < step:
                     self._logits[(pane.id, s)] = lg
+            if step == len(source.records):  # at the present step: copy the row as it is
+                row = self._live.index(pane_id)
+                self._kv = KV.join([self._kv, self._kv.select([row])])
+                self._pending = torch.cat([self._pending, self._pending[row:row + 1]])
+                self._live.append(pane.id)
+                return pane.id
+            # Earlier: the source's row (a copy) cropped to the prefix, its last token fed.
+            if step == 0:
+                kv, pending = self._prompt_kv.select([0]), self._prompt_logits[None]
+            else:
+                held = (self._kv.select([self._live.index(pane_id)]) if pane_id in self._live
+                        else self._parked[pane_id].select([0]))
+                kv, pending = self.runner.step(held.crop(len(self.prompt_ids) + step - 1),
+                                               [source.records[step - 1].token_id])
+            self._catch_up(pane, kv, pending, self.step_index)
             return pane.id
 
     def add_pane(self, recipe: Recipe | str, name: str | None = None,
@@ -302,23 +316,27 @@ class Engine:
             target = self.step_index
             pane = self._new_pane(name or f"pane {self._next_id}", recipe, seed)
             self._panes.append(pane)
-            # Catch up alone, with the same draws it would have had from the start.
-            saved = (self._live, self._kv, self._pending, self._parked)
-            self._live, self._parked = [pane.id], {}
-            self._kv, self._pending = self._prompt_kv.select([0]), self._prompt_logits[None]
-            while pane.stop is None and len(pane.records) < target:
-                self.step()
-            own_kv, own_pending, own_parked = self._kv, self._pending, self._parked
-            self._live, self._kv, self._pending, self._parked = saved
-            if pane.stop is not None:
-                self._parked.update(own_parked)
-            elif self._live:
-                self._kv = KV.join([self._kv, own_kv])
-                self._pending = torch.cat([self._pending, own_pending])
-                self._live.append(pane.id)
-            else:  # every other pane had stopped: this one alone is the batch
-                self._kv, self._pending, self._live = own_kv, own_pending, [pane.id]
+            self._catch_up(pane, self._prompt_kv.select([0]), self._prompt_logits[None], target)
             return pane.id
+
+    def _catch_up(self, pane: Pane, kv: KV, pending: torch.Tensor, target: int) -> None:
+        """Step `pane` alone from its cache row to `target` tokens (with the same draws it
+        would have had in the batch), then put it in the batch or park it."""
+        saved = (self._live, self._kv, self._pending, self._parked)
+        self._live, self._parked = [pane.id], {}
+        self._kv, self._pending = kv, pending
+        while pane.stop is None and len(pane.records) < target:
+            self.step()
+        own_kv, own_pending, own_parked = self._kv, self._pending, self._parked
+        self._live, self._kv, self._pending, self._parked = saved
+        if pane.stop is not None:
+            self._parked.update(own_parked)
+        elif self._live:
+            self._kv = KV.join([self._kv, own_kv])
+            self._pending = torch.cat([self._pending, own_pending])
+            self._live.append(pane.id)
+        else:  # every other pane had stopped: this one alone is the batch
+            self._kv, self._pending, self._live = own_kv, own_pending, [pane.id]
 
     def remove_pane(self, pane_id: int) -> None:
         with self._lock:
@@ -366,6 +384,27 @@ class Engine:
             for pane in self._panes:
                 pane.sampler = pane.recipe.sampler()
             self._logits.clear()
+
+    def set_prompt(self, prompt_ids: Sequence[int], *, max_new_tokens: int,
+                   stop_strings: Sequence[str] = ()) -> None:
+        """Restart every pane from a new prompt (and length limit and stop strings): the
+        panes, their recipes, the seed and the draw setting stay; every token goes."""
+        with self._lock:
+            if not prompt_ids:
+                raise EngineError("the prompt is empty: give at least one token")
+            if len(prompt_ids) >= self.max_context:
+                raise EngineError(f"the prompt has {len(prompt_ids)} tokens; the model's "
+                                  f"context holds {self.max_context}")
+            self.rewind(0)
+            self.prompt_ids = tuple(prompt_ids)
+            self.max_new_tokens = max_new_tokens
+            self.stop_strings = tuple(stop_strings)
+            self._stops = StopRules(self.eos_ids, self.stop_strings, max_new_tokens,
+                                    self.max_context)
+            self._prompt_kv, prompt_logits = self.runner.prefill([self.prompt_ids])
+            self._prompt_logits = prompt_logits[0]
+            self.restart(self.seed)  # fresh samplers, the draw log from the start
+            self._rebuild(self._live, {}, 0)
 
     def set_shared_draws(self, shared: bool) -> None:
         """Takes effect from the next step on (the uniform numbers already drawn stay)."""

@@ -12,8 +12,8 @@ from typing import TYPE_CHECKING
 from tui.decoding.allocator import retain_freed_memory
 from tui.errors import located
 from tui.session.engine import Engine
+from tui.session.scenario import EarlierSetup, Scenario
 from tui.session.views import EngineError
-from tui.session.scenario import Scenario
 
 if TYPE_CHECKING:
     from tui.model.catalogue import LoadedModel
@@ -28,6 +28,7 @@ class SessionInfo:
     model_source: str
     dtype: str
     dtype_note: str = ""  # why `--dtype auto` chose bfloat16 ("" otherwise)
+    prompt_edits: tuple[EarlierSetup, ...] = ()  # setups before each prompt edit, oldest first
 
 
 def open_session(lm: "LoadedModel", scenario: Scenario, *, seed: int | None = None,

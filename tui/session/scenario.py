@@ -13,11 +13,13 @@ A scenario is a TOML file of our own format (documented in the README):
     [[pane]]                 # 1 to 8 panes
     name = "..."; recipe = "temperature=0.8 top_p=0.9"; seed = 3 (optional)
 
-Every mistake raises `UserError` as ``FILE: FIELD: reason``.
+Every mistake raises `UserError` as ``FILE: FIELD: reason``. `scenario_toml` writes a
+scenario back in this format (the app saves an edited scenario with it).
 """
 
 from __future__ import annotations
 
+import json
 import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -60,6 +62,55 @@ class Scenario:
     @property
     def message_dicts(self) -> list[dict[str, str]] | None:
         return [{"role": r, "content": c} for r, c in self.messages] or None
+
+
+@dataclass(frozen=True)
+class EarlierSetup:
+    """A prompt and length settings the session ran with before the user edited them.
+
+    `steps` is how far the session had got when the edit restarted it (those steps were
+    dropped). Transcripts list these in the header field `prompt_edits`, oldest first.
+    """
+
+    steps: int
+    prompt: str | None
+    messages: tuple[tuple[str, str], ...]
+    max_new_tokens: int
+    stop: tuple[str, ...]
+
+    @classmethod
+    def of(cls, scenario: "Scenario", steps: int) -> "EarlierSetup":
+        return cls(steps, scenario.prompt, scenario.messages, scenario.max_new_tokens,
+                   scenario.stop)
+
+
+def toml_string(text: str) -> str:
+    """`text` as a TOML basic string (JSON's escapes are TOML's; DEL must be escaped too)."""
+    return json.dumps(text, ensure_ascii=False).replace("\x7f", "\\u007f")
+
+
+def scenario_toml(scenario: Scenario) -> str:
+    """The scenario as a scenario file: `parse_scenario` of it gives the same scenario."""
+    out = [f"title = {toml_string(scenario.title)}"]
+    if scenario.note:
+        out.append(f"note = {toml_string(scenario.note)}")
+    if scenario.model is not None:
+        out.append(f"model = {toml_string(scenario.model)}")
+    if scenario.prompt is not None:
+        out.append(f"prompt = {toml_string(scenario.prompt)}")
+    out += [f"max_new_tokens = {scenario.max_new_tokens}", f"seed = {scenario.seed}",
+            f"shared_draws = {'true' if scenario.shared_draws else 'false'}"]
+    if scenario.stop:
+        out.append(f"stop = [{', '.join(toml_string(s) for s in scenario.stop)}]")
+    for role, content in scenario.messages:
+        out += ["", "[[message]]", f"role = {toml_string(role)}",
+                f"content = {toml_string(content)}"]
+    for pane in scenario.panes:
+        out += ["", "[[pane]]", f"name = {toml_string(pane.name)}",
+                f"recipe = {toml_string(pane.recipe)}"]
+        if pane.seed is not None:
+            out.append(f"seed = {pane.seed}")
+    return "\n".join(out) + "\n"
 
 
 def scenarios_dir() -> Path:

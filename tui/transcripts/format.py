@@ -47,7 +47,8 @@ def header_of(view: "SessionView", info: "SessionInfo",
         prompt_ids=tuple(int(i) for i in prompt_ids), max_new_tokens=sc.max_new_tokens,
         stop=tuple(sc.stop), seed=view.seed, shared_draws=view.shared_draws,
         panes=tuple(PaneHeader.of(p) for p in view.panes), versions=package_versions(),
-        draw_log=view.draw_log if len(view.draw_log) > 1 else ())
+        draw_log=view.draw_log if len(view.draw_log) > 1 else (),
+        prompt_edits=info.prompt_edits)
 
 
 def header(view: "SessionView", info: "SessionInfo", prompt_ids: Iterable[int]) -> dict[str, Any]:

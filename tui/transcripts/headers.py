@@ -11,6 +11,7 @@ from importlib import metadata
 from typing import TYPE_CHECKING, Any
 
 from tui.session.change_log import ChangeLog
+from tui.session.scenario import EarlierSetup
 
 if TYPE_CHECKING:
     from tui.session.views import PaneView
@@ -19,6 +20,13 @@ FORMAT = "logitfork-transcript"
 RECOVERY_FORMAT = "logitfork-recovery"  # the same header and steps, plus event lines
 VERSION = 1  # the newest version this code writes and reads
 _PACKAGES = ("logitfork", "torch", "transformers", "numpy", "tokenizers", "textual")
+
+
+def setup_json(setup: EarlierSetup) -> dict[str, Any]:
+    """One entry of the header's `prompt_edits`."""
+    messages = [{"role": r, "content": c} for r, c in setup.messages] or None
+    return {"steps": setup.steps, "prompt": {"text": setup.prompt, "messages": messages},
+            "max_new_tokens": setup.max_new_tokens, "stop": list(setup.stop)}
 
 
 def package_versions() -> dict[str, str]:
@@ -80,6 +88,7 @@ class TranscriptHeader:
     panes: tuple[PaneHeader, ...]
     versions: dict[str, str] = field(default_factory=dict)
     draw_log: tuple[tuple[int, bool], ...] = ()  # (from step, shared); () = never changed
+    prompt_edits: tuple[EarlierSetup, ...] = ()  # setups before the user edited the prompt
     extra: dict[str, Any] = field(default_factory=dict)
     dtype_note: str = ""  # why `--dtype auto` chose bfloat16; "" when it was asked or float32
 
@@ -104,5 +113,7 @@ class TranscriptHeader:
             "panes": [p.to_json() for p in self.panes],
             "versions": dict(self.versions),
             **({"draw_log": [list(e) for e in self.draw_log]} if self.draw_log else {}),
+            **({"prompt_edits": [setup_json(e) for e in self.prompt_edits]}
+               if self.prompt_edits else {}),
             **self.extra,
         }

@@ -22,6 +22,7 @@ the log then stops writing and `error` says why):
     log.event("remove_pane", pane=pane_id)   # after remove_pane
     log.event("session", seed=s, shared_draws=b, draw_log=...)  # after restart / set_shared_draws
     log.sync(engine.view())                  # or instead of all the above: diff and write
+    log.restart(view, info, prompt_ids)      # after a prompt edit: the file starts over
     log.close(delete=True)                   # on a clean quit after a save
     log.close(delete=False)                  # on a quit without saving: keep it
 
@@ -111,6 +112,21 @@ class RecoveryLog:
                 self._written[p.id] = []
             self._write_new_records(view.panes)
             self._flush()
+
+    def restart(self, view: "SessionView", info: "SessionInfo", prompt_ids: Iterable[int]) -> None:
+        """Begin again on the same file: the session restarted on a new prompt, so nothing
+        the log held applies any more (the header changes)."""
+        with self._lock:
+            if self._closed or self._fd is None:
+                return
+            try:
+                os.close(self._fd)
+            except OSError:
+                pass
+            self._fd = None
+            self._pending, self._unflushed_steps = [], 0
+            self._panes, self._written = {}, {}
+        self.begin(view, info, prompt_ids)
 
     def append(self, records: Iterable[StepRecord]) -> None:
         """The records of one step (what `Engine.step()` returned)."""

@@ -16,6 +16,7 @@ from typing import Any, Callable
 from tui.decoding import Recipe, RecipeError
 from tui.decoding.grammar import upgrade_stored_recipe
 from tui.session.record import STOP_REASONS, StepRecord, TopToken
+from tui.session.scenario import EarlierSetup
 from tui.transcripts.headers import VERSION, PaneHeader, TranscriptHeader
 
 _STEP_KEYS = frozenset({"kind", "step", "pane", "token_id", "text", "rank", "raw_prob",
@@ -23,7 +24,7 @@ _STEP_KEYS = frozenset({"kind", "step", "pane", "token_id", "text", "rank", "raw
                         "forced", "stop"})
 _HEADER_KEYS = frozenset({"kind", "format", "version", "created", "title", "model", "prompt",
                           "max_new_tokens", "stop", "seed", "shared_draws", "panes",
-                          "versions", "draw_log"})
+                          "versions", "draw_log", "prompt_edits"})
 EVENT_KINDS = ("rewind", "pane", "remove_pane", "session")
 _NUMBER = (float, int)  # JSON numbers; bool is excluded by an exact type test
 _ENTROPY_SLACK = 1e-9  # -(p log p) summed in floating point can land just below zero
@@ -115,7 +116,39 @@ def parse_header(obj: dict[str, Any]) -> TranscriptHeader:
         max_new_tokens=_int(obj, "max_new_tokens", low=1), stop=tuple(stop),
         seed=_int(obj, "seed", low=0), shared_draws=_bool(obj, "shared_draws"),
         panes=panes, versions=dict(versions), draw_log=_draw_log(obj),
+        prompt_edits=_prompt_edits(obj),
         extra={k: v for k, v in obj.items() if k not in _HEADER_KEYS})
+
+
+def _prompt_edits(obj: dict[str, Any]) -> tuple[EarlierSetup, ...]:
+    """`prompt_edits`: the setups the session ran with before each prompt edit (optional)."""
+    raw = obj.get("prompt_edits")
+    if raw is None:
+        return ()
+    if not isinstance(raw, list):
+        raise SchemaError(f"prompt_edits: must be a list, got {_short(raw)}")
+    out = []
+    for i, entry in enumerate(raw):
+        where = f"prompt_edits[{i}]"
+        if not isinstance(entry, dict):
+            raise SchemaError(f"{where}: must be an object, got {_short(entry)}")
+        prompt = entry.get("prompt")
+        if not isinstance(prompt, dict):
+            raise SchemaError(f"{where}.prompt: must be an object, got {_short(prompt)}")
+        text = prompt.get("text")
+        if text is not None and not isinstance(text, str):
+            raise SchemaError(f"{where}.prompt.text: must be a string or null")
+        raw_messages = prompt.get("messages")
+        if raw_messages is not None and not isinstance(raw_messages, list):
+            raise SchemaError(f"{where}.prompt.messages: must be a list or null")
+        messages = tuple(_message(m, j) for j, m in enumerate(raw_messages or []))
+        stop = entry.get("stop")
+        if not isinstance(stop, list) or not all(isinstance(x, str) for x in stop):
+            raise SchemaError(f"{where}.stop: must be a list of strings, got {_short(stop)}")
+        out.append(EarlierSetup(_int(entry, "steps", low=0, where=f"{where}.steps"), text,
+                                messages, _int(entry, "max_new_tokens", low=1,
+                                               where=f"{where}.max_new_tokens"), tuple(stop)))
+    return tuple(out)
 
 
 def _draw_log(obj: dict[str, Any]) -> tuple[tuple[int, bool], ...]:

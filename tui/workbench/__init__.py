@@ -2,6 +2,7 @@
 
 - `source`: `SessionSource` (a live engine, or a stored session), `SessionLoader`;
 - `replay_source`: views of a transcript or a recovery log, without a model;
+- `operations`: the changes the app asks of the engine, as typed values;
 - `stepper`: the thread that steps the engine and reports through callbacks.
 """
 

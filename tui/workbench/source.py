@@ -21,6 +21,7 @@ if TYPE_CHECKING:
     import numpy as np
 
     from tui.decoding import StageResult
+    from tui.model.loaded import LoadedModel
     from tui.session.engine import Engine
     from tui.session.opening import SessionInfo
     from tui.session.scenario import Scenario
@@ -32,6 +33,7 @@ class SessionSource(Protocol):
     """The app's view of a session. `engine` is None when the session is read-only."""
 
     title: str
+    note: str  # the scenario's one-line note ("" when none)
     model_name: str
     prompt_text: str
     scenario_name: str
@@ -56,12 +58,34 @@ class SessionSource(Protocol):
 
 @dataclass
 class LiveSource:
-    """A session on a live engine: every control is on."""
+    """A session on a live engine: every control is on.
+
+    With `model`, the prompt can be edited (`restart_with`): the prompt must be encoded.
+    """
 
     live_engine: Engine
     info: "SessionInfo"
     prompt_text: str
+    model: "LoadedModel | None" = None
     notes: tuple[str, ...] = ()  # told once when the app opens (which forward path, the dtype)
+
+    def restart_with(self, scenario: "Scenario") -> None:
+        """Restart the session on `scenario`'s prompt, length limit and stop strings (call
+        on the engine's worker: it prefills). The old setup is kept in `info.prompt_edits`."""
+        from dataclasses import replace
+
+        from tui.session.scenario import EarlierSetup
+        from tui.session.views import EngineError
+
+        if self.model is None:
+            raise EngineError("this session was opened without its model's tokenizer")
+        ids = self.model.encode_prompt(scenario.prompt, scenario.message_dicts)
+        earlier = EarlierSetup.of(self.info.scenario, self.live_engine.step_index)
+        self.live_engine.set_prompt(ids, max_new_tokens=scenario.max_new_tokens,
+                                    stop_strings=scenario.stop)
+        self.info = replace(self.info, scenario=scenario,
+                            prompt_edits=self.info.prompt_edits + (earlier,))
+        self.prompt_text = self.model.decode(list(ids))
 
     @property
     def engine(self) -> Engine:
@@ -70,6 +94,10 @@ class LiveSource:
     @property
     def title(self) -> str:
         return self.info.scenario.title
+
+    @property
+    def note(self) -> str:
+        return self.info.scenario.note
 
     @property
     def model_name(self) -> str:
@@ -132,6 +160,7 @@ class StaticSource:
     save_reason: str = ""  # why saving is off, when that differs from `reason`
     notes: tuple[str, ...] = ()  # told once when the app opens (reader warnings, the reason)
     label: str = "read-only"  # the top bar's mode word
+    note: str = ""  # a transcript keeps the title only
 
     @property
     def engine(self) -> None:
@@ -188,4 +217,4 @@ class SessionLoader:
         engine, info = open_session(lm, self.scenario, seed=self.seed,
                                     max_new_tokens=self.max_new_tokens)
         notes = tuple(n for n in (lm.path_note, lm.dtype_note) if n)
-        return LiveSource(engine, info, lm.decode(list(engine.prompt_ids)), notes=notes)
+        return LiveSource(engine, info, lm.decode(list(engine.prompt_ids)), lm, notes=notes)

@@ -27,6 +27,7 @@ from typing import TYPE_CHECKING, Any, Callable
 from tui.errors import UserError
 from tui.files import crash_note
 from tui.session.views import EngineError, SessionView
+from tui.workbench.operations import Operation
 
 if TYPE_CHECKING:
     from tui.session.engine import Engine
@@ -42,20 +43,32 @@ class Stepped:
 
 @dataclass(frozen=True)
 class OperationDone:
-    """A queued operation finished; `result` is what its function returned."""
+    """A queued operation finished; `result` is what it returned."""
 
-    label: str
+    operation: Operation
     view: SessionView
     result: Any = None
+
+    @property
+    def label(self) -> str:
+        return self.operation.label
 
 
 @dataclass(frozen=True)
 class Failed:
-    """A step or an operation raised; the session is paused and as it was before."""
+    """An operation (or the recovery log) raised; the session is as it was before.
+
+    `operation` is the one that failed (None for the recovery log)."""
 
     label: str
     message: str
     view: SessionView | None = None
+    operation: Operation | None = None
+
+
+@dataclass(frozen=True)
+class StepFailed(Failed):
+    """A step raised: the session is paused and rewound to the step before."""
 
 
 @dataclass(frozen=True)
@@ -68,7 +81,6 @@ class RunChanged:
 
 StepperEvent = Stepped | OperationDone | Failed | RunChanged
 STOPPED_ALL = "every pane has stopped"  # the RunChanged reason when the session is done
-Operation = Callable[["Engine"], Any]
 
 
 def describe(exc: BaseException, doing: str | None = None) -> str:
@@ -97,7 +109,7 @@ class Stepper:
         self._emit = emit
         self._on_view = on_view
         self._wake = threading.Condition()
-        self._ops: deque[tuple[str, Operation]] = deque()
+        self._ops: deque[Operation] = deque()
         self._running = False
         self._until: int | None = None  # stop running once the session reaches this step
         self._single = 0  # single steps asked for while paused
@@ -140,10 +152,10 @@ class Stepper:
                 self._single += 1
                 self._wake.notify_all()
 
-    def submit(self, label: str, operation: Operation) -> None:
+    def submit(self, operation: Operation) -> None:
         """Run `operation(engine)` on the worker thread before the next step."""
         with self._wake:
-            self._ops.append((label, operation))
+            self._ops.append(operation)
             self._wake.notify_all()
 
     def close(self) -> None:
@@ -172,22 +184,22 @@ class Stepper:
                 self.busy = True
             try:
                 if op is not None:
-                    self._do_operation(*op)
+                    self._do_operation(op)
                 else:
                     self._do_step(single)
             finally:
                 self.busy = False
 
-    def _do_operation(self, label: str, operation: Operation) -> None:
+    def _do_operation(self, operation: Operation) -> None:
         try:
             result = operation(self.engine)
         except Exception as exc:  # noqa: BLE001 - shown to the user, session kept
             view = self._safe_view()
-            self._emit(Failed(label, describe(exc, f"{label} in the app"), view))
+            self._emit(Failed(operation.label, describe(exc, f"{operation.label} in the app"), view, operation))
             self._follow(view)
             return
         view = self.engine.view()
-        self._emit(OperationDone(label, view, result))
+        self._emit(OperationDone(operation, view, result))
         self._follow(view)
 
     def _do_step(self, single: bool) -> None:
@@ -203,7 +215,7 @@ class Stepper:
             self.pause("a step failed")
             self._recover(before)
             view = self._safe_view()
-            self._emit(Failed("step", describe(exc, "a step in the app"), view))
+            self._emit(StepFailed("step", describe(exc, "a step in the app"), view))
             self._follow(view)
             return
         view = engine.view()
