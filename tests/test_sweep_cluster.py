@@ -232,6 +232,7 @@ def test_a_killed_driver_resumes_and_a_killed_worker_costs_only_its_chunk(
     chunk, pid = killed[0]
     assert f"(pid {pid}) was lost while it ran chunk {chunk}" in err
     assert f"chunk {chunk} runs again" in err
+    assert "gone for good" not in err  # a restarted worker is asked again until it is back
     assert stdout == on_cluster[1]  # the tables only: no word from Ray on stdout
     # the same folder as the undisturbed run, bit for bit (the same threads per worker)
     assert chunks_of(out) == chunks_of(on_cluster[0])

@@ -41,6 +41,7 @@ WORKER_RESTARTS = 3  # times Ray restarts one worker's process after it dies
 CHUNK_ATTEMPTS = 3  # a chunk lost this many times (its worker died each time) ends the run
 READY_SECONDS = 600.0  # a worker that has not loaded its model by then ends the run
 POLL_SECONDS = 0.5  # the driver wakes this often while it waits (Ctrl-C stays prompt)
+RESTART_POLL_SECONDS = 0.5  # how often a restarting worker is asked whether it is back
 # Ray kept quiet and offline: no usage report (the dashboard is never started).
 QUIET_ENVIRONMENT = {"RAY_USAGE_STATS_ENABLED": "0"}
 
@@ -299,7 +300,7 @@ class WorkerPool:
             done, _ = ray.wait([*running, *restarting], num_returns=1, timeout=POLL_SECONDS)
             for ref in done:
                 if ref in restarting:
-                    self._rejoin(ray, restarting.pop(ref), ref, idle, note)
+                    self._rejoin(ray, restarting.pop(ref), ref, restarting, idle, note)
                     continue
                 slot, chunk = running.pop(ref)
                 where = self.infos[slot].where()
@@ -331,19 +332,27 @@ class WorkerPool:
             ray.kill(actor, no_restart=True)
         self._actors = []
 
-    def _rejoin(self, ray: Any, slot: int, probe: Any, idle: deque[int], note: Note) -> None:
-        """A restarted worker answered its probe: back to work, or out of the pool."""
-        from ray.exceptions import RayError
+    def _rejoin(self, ray: Any, slot: int, probe: Any, restarting: dict[Any, int],
+                idle: deque[int], note: Note) -> None:
+        """A restarted worker's probe came back: back to work, asked again, or out of the pool."""
+        import time
+
+        from ray.exceptions import ActorUnavailableError, RayError
 
         try:
             answer = ray.get(probe)
+        except ActorUnavailableError:  # still restarting: calls fail fast meanwhile
+            time.sleep(RESTART_POLL_SECONDS)
+            restarting[self._actors[slot].ready.remote()] = slot
+            return
         except RayError:
-            note(f"worker {self.infos[slot].where()} is gone for good (restarted "
-                 f"{WORKER_RESTARTS} times); the others go on")
+            note(f"worker {self.infos[slot].where()} is gone for good (Ray restarts a "
+                 f"worker {WORKER_RESTARTS} times at most); the others go on")
             return
         if isinstance(answer, str):
             raise UserError(f"--ray: the restarted worker on {answer}")
         self.infos[slot] = answer
+        note(f"worker {answer.where()} is back (restarted, its model loaded again)")
         idle.append(slot)
 
 
