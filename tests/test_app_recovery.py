@@ -114,9 +114,10 @@ async def test_quitting_without_saving_deletes_the_log_and_nothing_is_offered_ne
     assert not path.exists() and logs(state) == []
     again = make_app(source=live_source(lm), recovery=True)
     async with again.run_test(size=(100, 30)) as pilot:
-        await wait_until(pilot, lambda: again.stepper is not None)
-        await pilot.pause(0.3)  # the scan for leftover logs runs on a worker
-        await again.workers.wait_for_complete()
+        await wait_until(pilot, lambda: again.stepper is not None and not any(
+            w.group == "recovery" and not w.is_finished for w in again.workers),
+            what="the scan for leftover logs")
+        await pilot.pause()
         assert not isinstance(again.screen, ConfirmDialog)  # no offer of the thrown-away log
 
 
