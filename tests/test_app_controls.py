@@ -307,11 +307,11 @@ async def test_the_fork_dialog_takes_typed_text_in_both_fields_in_tab_order(lm):
         await pilot.press("tab")
         assert dialog.focused is recipe
         await pilot.press("end", *" top_k=3")
-        assert name.value == "greedy fork 2" and recipe.value == "greedy top_k=3"
+        assert name.value == "greedy/1 2" and recipe.value == "greedy top_k=3"
         await pilot.press("enter")
         await wait_until(pilot, lambda: len(app.view.panes) == 5 and idle(app), what="fork")
         fork = app.view.panes[-1]
-        assert fork.name == "greedy fork 2" and fork.recipe == "greedy top_k=3"
+        assert fork.name == "greedy/1 2" and fork.recipe == "greedy top_k=3"
 
 
 async def test_fork_at_the_cursor_keeps_the_text_shown_and_catches_up(lm):
