@@ -56,9 +56,9 @@ def test_the_flag_and_the_parameter_stages_as_listed():
     assert STAGES["greedy"].accepts == "no value"
     assert parses("greedy") and not parses("greedy=1")
     spec = STAGES["mirostat"]
-    assert spec.accepts.startswith("tau > 0, eta > 0")
-    assert parses("mirostat(tau=3,eta=0.0001)") and parses("mirostat=3")
-    assert not parses("mirostat(tau=0)") and not parses("mirostat(tau=3,eta=0)")
+    assert spec.accepts.startswith("tau > 0, learning_rate > 0")
+    assert parses("mirostat(tau=3,learning_rate=0.0001)") and parses("mirostat=3")
+    assert not parses("mirostat(tau=0)") and not parses("mirostat(tau=3,learning_rate=0)")
 
 
 def test_every_stage_has_a_meaning_of_one_line():
