@@ -50,3 +50,15 @@ def tiny_model_dir(tmp_path_factory: pytest.TempPathFactory) -> Path:
     Load with `tui.model.catalogue.load_model(str(tiny_model_dir))`.
     """
     return build_tiny_model(tmp_path_factory.mktemp("tiny_model"))
+
+
+@pytest.fixture(scope="session")
+def embedded_model():
+    """The embedded default model (SmolLM2-135M), loaded once for every realmodel test."""
+    import warnings
+
+    from tui.model.catalogue import DEFAULT_MODEL, load_model
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return load_model(DEFAULT_MODEL)

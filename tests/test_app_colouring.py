@@ -24,14 +24,7 @@ import pytest
 from rich.color import Color, ColorSystem
 
 from tui import token_style as ts
-from tui.app.colouring import (
-    FINAL_BANDS,
-    OKABE_ITO,
-    RANK_BANDS,
-    Scheme,
-    final_band,
-    rank_band,
-)
+from tui.app.colouring import FINAL_BANDS, OKABE_ITO, RANK_BANDS, Scheme, final_band, rank_band
 
 
 def relative_luminance(hex_colour: str) -> float:

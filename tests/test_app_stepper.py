@@ -15,15 +15,8 @@ import pytest
 
 from tui.session.views import EngineError, PaneView, SessionView
 from tui.workbench.operations import Call
-from tui.workbench.stepper import (
-    Failed,
-    StepFailed,
-    OperationDone,
-    RunChanged,
-    Stepped,
-    Stepper,
-    describe,
-)
+from tui.workbench.stepper import (Failed, StepFailed, OperationDone, RunChanged, Stepped, Stepper,
+                                   describe)
 
 
 class FakeEngine:

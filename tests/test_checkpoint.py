@@ -21,12 +21,8 @@ from safetensors.torch import load_file, save_file
 
 from tui.model import lean_llama
 from tui.model.lean_llama import LeanRunner, shape_of_model
-from tui.model.llama_checkpoint import (
-    config_refusal,
-    read_checkpoint,
-    read_config,
-    shape_from_config,
-)
+from tui.model.llama_checkpoint import (config_refusal, read_checkpoint, read_config,
+                                        shape_from_config)
 
 try:
     from tiny_model import LAYERS_VOCAB, tiny_llama, tiny_qwen2

@@ -13,17 +13,9 @@ import warnings
 import numpy as np
 import pytest
 import torch
-from transformers import (
-    GenerationConfig,
-    LlamaConfig,
-    LlamaForCausalLM,
-    LogitsProcessor,
-    LogitsProcessorList,
-    MinPLogitsWarper,
-    RepetitionPenaltyLogitsProcessor,
-    TemperatureLogitsWarper,
-    TopKLogitsWarper,
-)
+from transformers import (GenerationConfig, LlamaConfig, LlamaForCausalLM, LogitsProcessor,
+                          LogitsProcessorList, MinPLogitsWarper, RepetitionPenaltyLogitsProcessor,
+                          TemperatureLogitsWarper, TopKLogitsWarper)
 
 from tui.decoding import Recipe
 from tui.decoding.hf import MirostatLogitsProcessor, RecipeWarning, StageLogitsProcessor

@@ -18,30 +18,13 @@ import pytest
 import torch
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from transformers import (
-    EpsilonLogitsWarper,
-    EtaLogitsWarper,
-    MinPLogitsWarper,
-    NoRepeatNGramLogitsProcessor,
-    RepetitionPenaltyLogitsProcessor,
-    TemperatureLogitsWarper,
-    TopKLogitsWarper,
-    TopPLogitsWarper,
-    TypicalLogitsWarper,
-)
+from transformers import (EpsilonLogitsWarper, EtaLogitsWarper, MinPLogitsWarper,
+                          NoRepeatNGramLogitsProcessor, RepetitionPenaltyLogitsProcessor,
+                          TemperatureLogitsWarper, TopKLogitsWarper, TopPLogitsWarper,
+                          TypicalLogitsWarper)
 
-from tui.decoding import (
-    Epsilon,
-    Eta,
-    MinP,
-    NoRepeatNGram,
-    Recipe,
-    RepetitionPenalty,
-    Temperature,
-    TopK,
-    TopP,
-    TypicalP,
-)
+from tui.decoding import (Epsilon, Eta, MinP, NoRepeatNGram, Recipe, RepetitionPenalty, Temperature,
+                          TopK, TopP, TypicalP)
 
 SETTINGS = settings(
     max_examples=40, deadline=None, suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large]

@@ -16,26 +16,9 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from tui.commands import recipe as recipe_command
-from tui.decoding import (
-    INPUT,
-    STAGES,
-    Epsilon,
-    Eta,
-    FrequencyPenalty,
-    Greedy,
-    MinP,
-    MirostatV2,
-    NoRepeatNGram,
-    PresencePenalty,
-    Recipe,
-    RecipeError,
-    RepetitionPenalty,
-    Temperature,
-    TopK,
-    TopP,
-    TypicalP,
-    cut_by,
-)
+from tui.decoding import (INPUT, STAGES, Epsilon, Eta, FrequencyPenalty, Greedy, MinP, MirostatV2,
+                          NoRepeatNGram, PresencePenalty, Recipe, RecipeError, RepetitionPenalty,
+                          Temperature, TopK, TopP, TypicalP, cut_by)
 
 finite = st.floats(allow_nan=False, allow_infinity=False)
 unit_open_closed = st.floats(0.0, 1.0, exclude_min=True)

@@ -23,18 +23,8 @@ import pytest
 import torch
 from tiny_model import tiny_llama
 
-from tui.decoding import (
-    Epsilon,
-    Eta,
-    MinP,
-    NoRepeatNGram,
-    Recipe,
-    RepetitionPenalty,
-    Temperature,
-    TopK,
-    TopP,
-    TypicalP,
-)
+from tui.decoding import (Epsilon, Eta, MinP, NoRepeatNGram, Recipe, RepetitionPenalty, Temperature,
+                          TopK, TopP, TypicalP)
 from tui.decoding.hf import COMMUTING, LIBRARY_ORDER, RecipeWarning
 
 # two active settings per stage kind (each changes the distribution on these inputs)

@@ -15,16 +15,8 @@ from hypothesis import strategies as st
 
 from tui.session.record import mean_logprob, perplexity
 from tui.sweeps.bootstrap import bootstrap_ci, bootstrap_ci_sets, resample_indices
-from tui.sweeps.metrics import (
-    MEASURE_NAMES,
-    DistinctN,
-    SampleRecord,
-    SelfBleu,
-    distinct_n,
-    measure_samples,
-    repeated_ngram_share,
-    self_bleu,
-)
+from tui.sweeps.metrics import (MEASURE_NAMES, DistinctN, SampleRecord, SelfBleu, distinct_n,
+                                measure_samples, repeated_ngram_share, self_bleu)
 
 WORDS = ["the", "keeper", "lit", "lamp", "at", "dusk", "wrote", "of", "ships", ",", ".",
          "tide", "Storm", "storm", "rock", "log"]

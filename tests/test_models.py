@@ -26,14 +26,8 @@ import torch
 from tui.errors import UserError
 from tui.model import conversion_cache as model_cache
 from tui.model import sources as model_sources
-from tui.model.catalogue import (
-    DEFAULT_MODEL,
-    CatalogueEntry,
-    load_model,
-    offline_status,
-    read_catalogue,
-    resolve,
-)
+from tui.model.catalogue import (DEFAULT_MODEL, CatalogueEntry, load_model, offline_status,
+                                 read_catalogue, resolve)
 from tui.progress import ProgressEvent
 from tui.settings import LOADER_ENV, settings
 

@@ -6,7 +6,6 @@ later runs load the cached safetensors in a few seconds.
 
 from __future__ import annotations
 
-import warnings
 
 import pytest
 
@@ -17,12 +16,8 @@ pytestmark = pytest.mark.realmodel
 
 
 @pytest.fixture(scope="module")
-def lm():
-    from tui.model.catalogue import DEFAULT_MODEL, load_model
-
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        return load_model(DEFAULT_MODEL)
+def lm(embedded_model):
+    return embedded_model
 
 
 def test_twenty_steps_of_the_default_scenario_and_an_identical_rerun(lm):

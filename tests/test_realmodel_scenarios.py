@@ -20,7 +20,6 @@ steps and check exactly that claim. Definitions used, with their sources:
 
 from __future__ import annotations
 
-import warnings
 
 import pytest
 
@@ -31,12 +30,8 @@ pytestmark = pytest.mark.realmodel
 
 
 @pytest.fixture(scope="module")
-def lm():
-    from tui.model.catalogue import DEFAULT_MODEL, load_model
-
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore")
-        return load_model(DEFAULT_MODEL)
+def lm(embedded_model):
+    return embedded_model
 
 
 def panes_after(lm, name: str, steps: int) -> dict:

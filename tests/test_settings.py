@@ -11,14 +11,8 @@ from pathlib import Path
 import pytest
 
 from tui.errors import UserError
-from tui.settings import (
-    ASSUMED_BANDWIDTH_GBS,
-    PROCESS_DEFAULTS,
-    Settings,
-    prepare_process,
-    read_settings,
-    settings,
-)
+from tui.settings import (ASSUMED_BANDWIDTH_GBS, PROCESS_DEFAULTS, Settings, prepare_process,
+                          read_settings, settings)
 
 ROOT = Path(__file__).resolve().parents[1]
 

@@ -14,7 +14,6 @@ docs.ray.io, "Actor fault tolerance", max_restarts).
 from __future__ import annotations
 
 import contextlib
-import io
 import json
 import os
 import shutil
@@ -29,42 +28,19 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from tui.cli import main as cli
 from tui.sweeps.folder import SAMPLES, SweepFolder, read_samples_file
 
 try:
-    from sweep_files import write_sweep
+    from sweep_files import (RESAMPLES, base, kill_after_first_chunk, reference, run, sweep,  # noqa: F401 - fixtures
+                             write_sweep)
 except ImportError:
-    from tests.sweep_files import write_sweep
+    from tests.sweep_files import (RESAMPLES, base, kill_after_first_chunk, reference, run, sweep,  # noqa: F401 - fixtures
+                             write_sweep)
 
 ROOT = Path(__file__).resolve().parent.parent
-RESAMPLES = "100"
 RAY_CLI = Path(sys.executable).with_name("ray")
 # Quiet and offline: no usage report, no token file written to the home folder.
 RAY_ENV = {"RAY_USAGE_STATS_ENABLED": "0", "RAY_AUTH_MODE": "disabled"}
-SLOW_DRIVER = """\
-import time
-import tui.sweeps.folder as folder
-
-_append = folder.SweepFolder.append_chunk
-
-
-def _append_then_wait(self, index, samples):
-    _append(self, index, samples)
-    time.sleep(2.0)
-
-
-folder.SweepFolder.append_chunk = _append_then_wait
-"""
-
-
-def run(*argv: str) -> tuple[int, str, str]:
-    out, err = io.StringIO(), io.StringIO()
-    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
-        rc = cli(list(argv))
-    return rc, out.getvalue(), err.getvalue()
-
-
 def free_port() -> int:
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
@@ -132,25 +108,6 @@ def cluster(ray_env) -> str:
 
 
 @pytest.fixture(scope="module")
-def base(tmp_path_factory) -> Path:
-    return tmp_path_factory.mktemp("sweep_cluster")
-
-
-@pytest.fixture(scope="module")
-def sweep(base, tiny_model_dir) -> Path:
-    """2 prompts x 2 recipes x 4 samples in chunks of 4 rows: 4 chunks."""
-    return write_sweep(base / "lamp.toml", tiny_model_dir, stop=["."])
-
-
-@pytest.fixture(scope="module")
-def reference(base, sweep) -> tuple[Path, str]:
-    """The one-process run and its printed tables."""
-    rc, out, err = run("sweep", str(sweep), "--out", str(base / "whole"), "--resamples", RESAMPLES)
-    assert rc == 0, err
-    return base / "whole", out
-
-
-@pytest.fixture(scope="module")
 def on_cluster(base, sweep, cluster) -> tuple[Path, str, str]:
     """The undisturbed cluster run: 2 workers, 1 thread each."""
     out = base / "ray"
@@ -194,24 +151,7 @@ def test_a_killed_driver_resumes_and_a_killed_worker_costs_only_its_chunk(
 
     # 1. the driver is killed (SIGKILL) once a chunk is in the folder
     out = base / "ray-killed"
-    hooks = base / "hooks"
-    hooks.mkdir()
-    (hooks / "sitecustomize.py").write_text(SLOW_DRIVER)
-    env = {**os.environ, "PYTHONPATH": os.pathsep.join([str(hooks), str(ROOT)])}
-    proc = subprocess.Popen([sys.executable, "-m", "tui", "sweep", str(sweep), "--out", str(out),
-                             "--resamples", RESAMPLES, "--ray", cluster, "--workers", "2"],
-                            env=env, cwd=base, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
-    deadline = time.monotonic() + 120
-    try:
-        while b'"end"' not in ((out / SAMPLES).read_bytes() if (out / SAMPLES).exists() else b""):
-            assert proc.poll() is None, proc.stderr.read().decode()
-            assert time.monotonic() < deadline, "no chunk written in 120 s"
-            time.sleep(0.02)
-        proc.send_signal(signal.SIGKILL)
-    finally:
-        proc.kill()
-        proc.wait()
-        proc.stderr.close()
+    kill_after_first_chunk(base, sweep, out, "--ray", cluster, "--workers", "2")
     written = SweepFolder.read(out).done
     assert 1 <= len(written) < 4
 

@@ -8,14 +8,8 @@ token, after a SIGKILL and a re-run, and after running the shards and merging th
 
 from __future__ import annotations
 
-import contextlib
-import io
 import json
-import os
 import signal
-import subprocess
-import sys
-import time
 from pathlib import Path
 
 import pytest
@@ -26,56 +20,13 @@ from tui.sweeps.folder import SAMPLES, Manifest, SweepFolder, read_samples_file
 from tui.sweeps.metrics import SampleRecord
 
 try:
-    from sweep_files import write_sweep
+    from sweep_files import (RESAMPLES, base, kill_after_first_chunk, reference, run, sweep,  # noqa: F401 - fixtures
+                             write_sweep)
 except ImportError:
-    from tests.sweep_files import write_sweep
+    from tests.sweep_files import (RESAMPLES, base, kill_after_first_chunk, reference, run, sweep,  # noqa: F401 - fixtures
+                             write_sweep)
 
 ROOT = Path(__file__).resolve().parent.parent
-RESAMPLES = "100"
-# Makes the real command pause after each chunk it writes, so that the test can kill it
-# between chunks; loaded by Python's `site` module at start-up (sitecustomize).
-SLOW_CHUNKS = """\
-import time
-import tui.sweeps.folder as folder
-
-_append = folder.SweepFolder.append_chunk
-
-
-def _append_then_wait(self, index, samples):
-    _append(self, index, samples)
-    time.sleep(2.0)
-
-
-folder.SweepFolder.append_chunk = _append_then_wait
-"""
-
-
-def run(*argv: str) -> tuple[int, str, str]:
-    out, err = io.StringIO(), io.StringIO()
-    with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
-        rc = cli(list(argv))
-    return rc, out.getvalue(), err.getvalue()
-
-
-@pytest.fixture(scope="module")
-def base(tmp_path_factory) -> Path:
-    return tmp_path_factory.mktemp("sweep_resume")
-
-
-@pytest.fixture(scope="module")
-def sweep(base, tiny_model_dir) -> Path:
-    """2 prompts x 2 recipes x 4 samples in chunks of 4 rows: 4 chunks."""
-    return write_sweep(base / "lamp.toml", tiny_model_dir, stop=["."])
-
-
-@pytest.fixture(scope="module")
-def reference(base, sweep) -> Path:
-    """The uninterrupted run."""
-    rc, _, err = run("sweep", str(sweep), "--out", str(base / "whole"), "--resamples", RESAMPLES)
-    assert rc == 0, err
-    return base / "whole"
-
-
 def same_samples(a: Path, b: Path) -> bool:
     return ({c: [s.to_json() for s in v] for c, v in SweepFolder.read(a).load_chunks().items()}
             == {c: [s.to_json() for s in v] for c, v in SweepFolder.read(b).load_chunks().items()})
@@ -83,42 +34,24 @@ def same_samples(a: Path, b: Path) -> bool:
 
 def test_a_killed_run_resumes_to_the_same_numbers(base, sweep, reference):
     out = base / "killed"
-    hooks = base / "hooks"
-    hooks.mkdir()
-    (hooks / "sitecustomize.py").write_text(SLOW_CHUNKS)
-    env = {**os.environ, "PYTHONPATH": os.pathsep.join([str(hooks), str(ROOT)])}
-    proc = subprocess.Popen([sys.executable, "-m", "tui", "sweep", str(sweep), "--out", str(out),
-                             "--resamples", RESAMPLES], env=env, cwd=base,
-                            stdout=subprocess.DEVNULL, stderr=subprocess.PIPE)
-    deadline = time.monotonic() + 120
-    try:
-        while b'"end"' not in ((out / SAMPLES).read_bytes() if (out / SAMPLES).exists() else b""):
-            assert proc.poll() is None, proc.stderr.read().decode()
-            assert time.monotonic() < deadline, "no chunk written in 120 s"
-            time.sleep(0.02)
-        proc.send_signal(signal.SIGKILL)
-    finally:
-        proc.kill()
-        proc.wait()
-        proc.stderr.close()
-    assert proc.returncode == -signal.SIGKILL
+    assert kill_after_first_chunk(base, sweep, out) == -signal.SIGKILL
     written = SweepFolder.read(out).done
     assert 1 <= len(written) < 4
     # What a crash in the middle of the next chunk's write leaves: some of its sample
     # lines, the last one cut short, and no closing line.
     missing = min(set(range(4)) - set(written))
     lines = [json.dumps({"chunk": missing, "sample": s.to_json()})
-             for s in SweepFolder.read(reference).load_chunks()[missing][:2]]
+             for s in SweepFolder.read(reference[0]).load_chunks()[missing][:2]]
     with open(out / SAMPLES, "a", encoding="utf-8") as fh:  # (a chunk may hold one sample)
         fh.write("".join(line + "\n" for line in lines[:-1]) + lines[-1][:40])
 
     rc, stdout, err = run("sweep", str(sweep), "--out", str(out), "--resamples", RESAMPLES)
     assert rc == 0, err
     assert f"{len(written)} of 4 chunks already written" in err
-    assert (out / "results.csv").read_text() == (reference / "results.csv").read_text()
-    assert same_samples(out, reference)
+    assert (out / "results.csv").read_text() == (reference[0] / "results.csv").read_text()
+    assert same_samples(out, reference[0])
     # the torn tail was cut off and the chunks went on in order: the same file
-    assert (out / SAMPLES).read_bytes() == (reference / SAMPLES).read_bytes()
+    assert (out / SAMPLES).read_bytes() == (reference[0] / SAMPLES).read_bytes()
     # and a third run does nothing new
     rc, _, err = run("sweep", str(sweep), "--out", str(out), "--resamples", RESAMPLES)
     assert rc == 0 and "4 of 4 chunks already written" in err
@@ -126,9 +59,9 @@ def test_a_killed_run_resumes_to_the_same_numbers(base, sweep, reference):
 
 def test_another_sweep_file_for_the_folder_is_refused(base, tiny_model_dir, reference, capsys):
     other = write_sweep(base / "other.toml", tiny_model_dir, stop=["."], seed=8)
-    assert cli(["sweep", str(other), "--out", str(reference)]) == 2
+    assert cli(["sweep", str(other), "--out", str(reference[0])]) == 2
     err = capsys.readouterr().err
-    assert err.startswith(f"error: {reference}: holds a different sweep: its fingerprint ")
+    assert err.startswith(f"error: {reference[0]}: holds a different sweep: its fingerprint ")
     assert "differs" in err and err.count("\n") == 1
 
 
@@ -151,8 +84,8 @@ def test_shards_merge_into_the_unsharded_tables(base, shards, reference):
     rc, stdout, err = run("sweep-merge", *map(str, shards), "--out", str(merged),
                           "--resamples", RESAMPLES)
     assert rc == 0, err
-    assert (merged / "results.csv").read_text() == (reference / "results.csv").read_text()
-    assert same_samples(merged, reference)
+    assert (merged / "results.csv").read_text() == (reference[0] / "results.csv").read_text()
+    assert same_samples(merged, reference[0])
     assert "tiny sweep: all 2 prompt(s)" in stdout
 
 

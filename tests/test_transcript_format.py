@@ -14,14 +14,8 @@ import tracemalloc
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
-from transcript_fakes import (
-    run_cli,
-    sample_header,
-    sample_lines,
-    sample_records,
-    write_objects,
-    write_sample,
-)
+from transcript_fakes import (run_cli, sample_header, sample_lines, sample_records, write_objects,
+                              write_sample)
 
 from tui.errors import UserError
 from tui.files import write_atomic

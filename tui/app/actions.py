@@ -23,18 +23,8 @@ from tui.app.safe_text import shown_line
 from tui.app.save_dialog import SaveDialog, default_path
 from tui.app.token_pane import TokenPane
 from tui.session.parting import fork_name
-from tui.workbench.operations import (
-    AddPane,
-    EditPrompt,
-    EditRecipe,
-    Force,
-    Fork,
-    Operation,
-    RemovePane,
-    Restart,
-    Rewind,
-    SetDraws,
-)
+from tui.workbench.operations import (AddPane, EditPrompt, EditRecipe, Force, Fork, Operation,
+                                      RemovePane, Restart, Rewind, SetDraws)
 
 if TYPE_CHECKING:
     from tui.app.app import LogitforkApp

@@ -37,16 +37,8 @@ from tui.app.top_bar import BarState, TopBar
 from tui.progress import ProgressEvent
 from tui.session.views import SessionView
 from tui.workbench.source import SessionLoader, SessionSource
-from tui.workbench.stepper import (
-    STOPPED_ALL,
-    Failed,
-    OperationDone,
-    RunChanged,
-    StepFailed,
-    Stepped,
-    Stepper,
-    StepperEvent,
-)
+from tui.workbench.stepper import (STOPPED_ALL, Failed, OperationDone, RunChanged, StepFailed,
+                                   Stepped, Stepper, StepperEvent)
 from tui.workbench.operations import Operation
 
 if TYPE_CHECKING:

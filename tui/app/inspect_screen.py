@@ -38,14 +38,8 @@ from tui.app.safe_text import shown_line, shown_token
 from tui.app.token_pane import pane_text, prompt_tail
 from tui.session.distribution import StepDistribution
 from tui.session.record import TOP_N
-from tui.session.step_analysis import (
-    RecipeRow,
-    TopRow,
-    format_prob,
-    recipe_at,
-    recipe_rows,
-    top_rows,
-)
+from tui.session.step_analysis import (RecipeRow, TopRow, format_prob, recipe_at, recipe_rows,
+                                       top_rows)
 from tui.session.views import SessionView
 from tui.workbench.source import SessionSource
 from tui.workbench.stepper import describe

@@ -22,12 +22,7 @@ def add_arguments(parser: argparse.ArgumentParser) -> None:
 
 def main(args: argparse.Namespace) -> int:
     from tui.model import conversion_cache as model_cache
-    from tui.model.catalogue import (
-        DEFAULT_MODEL,
-        catalogue_path,
-        offline_status,
-        read_catalogue,
-    )
+    from tui.model.catalogue import DEFAULT_MODEL, catalogue_path, offline_status, read_catalogue
 
     path = args.catalogue if args.catalogue is not None else catalogue_path()
     entries = read_catalogue(path)

@@ -76,13 +76,8 @@ class ProgressDisplay:
     def _update_bar(self, event: ProgressEvent) -> None:
         if self._bars is None:
             from rich.console import Console
-            from rich.progress import (
-                BarColumn,
-                Progress,
-                TaskProgressColumn,
-                TextColumn,
-                TimeRemainingColumn,
-            )
+            from rich.progress import (BarColumn, Progress, TaskProgressColumn, TextColumn,
+                                       TimeRemainingColumn)
 
             self._bars = Progress(TextColumn("{task.description}"), BarColumn(),
                                   TaskProgressColumn(), TextColumn("{task.fields[amount]}"),

@@ -18,11 +18,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 def main(args: argparse.Namespace) -> int:
     from tui.errors import UserError
     from tui.transcripts.recovery_log import recovery_dir
-    from tui.transcripts.recovery_reader import (
-        find_recovery,
-        list_recoveries,
-        read_recovery,
-    )
+    from tui.transcripts.recovery_reader import find_recovery, list_recoveries, read_recovery
 
     if args.log is None:
         if args.out or args.delete:

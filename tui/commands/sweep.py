@@ -127,12 +127,7 @@ def _run_on_cluster(args: argparse.Namespace, spec: SweepSpec, prompts: tuple[Pr
 def main(args: argparse.Namespace) -> int:
     from tui.errors import UserError
     from tui.sweeps.folder import SweepFolder, shard_text
-    from tui.sweeps.plan import (
-        default_folder,
-        make_manifest,
-        parse_shard,
-        resolve_prompts,
-    )
+    from tui.sweeps.plan import default_folder, make_manifest, parse_shard, resolve_prompts
     from tui.sweeps.spec import load_sweep
 
     spec = load_sweep(args.sweep)

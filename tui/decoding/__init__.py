@@ -10,12 +10,8 @@ transformers bridge in `hf` (imported only when asked for).
 from tui.decoding.draw import draw, draw_order, entropy
 from tui.decoding.grammar import STAGES
 from tui.decoding.mirostat import MirostatV2
-from tui.decoding.penalties import (
-    FrequencyPenalty,
-    NoRepeatNGram,
-    PresencePenalty,
-    RepetitionPenalty,
-)
+from tui.decoding.penalties import (FrequencyPenalty, NoRepeatNGram, PresencePenalty,
+                                    RepetitionPenalty)
 from tui.decoding.recipe import Recipe
 from tui.decoding.sampler import INPUT, Sampler, StageResult, cut_by
 from tui.decoding.scaling import Greedy, Temperature

@@ -20,12 +20,8 @@ from dataclasses import dataclass
 from typing import Callable
 
 from tui.decoding.mirostat import MirostatV2
-from tui.decoding.penalties import (
-    FrequencyPenalty,
-    NoRepeatNGram,
-    PresencePenalty,
-    RepetitionPenalty,
-)
+from tui.decoding.penalties import (FrequencyPenalty, NoRepeatNGram, PresencePenalty,
+                                    RepetitionPenalty)
 from tui.decoding.scaling import Greedy, Temperature
 from tui.decoding.stage import RecipeError, Stage
 from tui.decoding.truncation import Epsilon, Eta, MinP, TopK, TopP, TypicalP

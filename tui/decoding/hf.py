@@ -33,24 +33,13 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import torch
-from transformers import (
-    GenerationConfig,
-    LogitsProcessor,
-    LogitsProcessorList,
-    MinPLogitsWarper,
-    RepetitionPenaltyLogitsProcessor,
-    TemperatureLogitsWarper,
-    TopKLogitsWarper,
-    TypicalLogitsWarper,
-)
+from transformers import (GenerationConfig, LogitsProcessor, LogitsProcessorList, MinPLogitsWarper,
+                          RepetitionPenaltyLogitsProcessor, TemperatureLogitsWarper,
+                          TopKLogitsWarper, TypicalLogitsWarper)
 
 from tui.decoding.mirostat import MirostatV2
-from tui.decoding.penalties import (
-    FrequencyPenalty,
-    NoRepeatNGram,
-    PresencePenalty,
-    RepetitionPenalty,
-)
+from tui.decoding.penalties import (FrequencyPenalty, NoRepeatNGram, PresencePenalty,
+                                    RepetitionPenalty)
 from tui.decoding.scaling import Greedy, Temperature
 from tui.decoding.stage import Candidates, History, Stage, StatefulStage
 from tui.decoding.truncation import Epsilon, Eta, MinP, TopK, TopP, TypicalP

@@ -33,14 +33,8 @@ from typing import ClassVar
 
 import numpy as np
 
-from tui.decoding.stage import (
-    Candidates,
-    History,
-    StatefulStage,
-    check_interval,
-    format_number,
-    keep_most_likely,
-)
+from tui.decoding.stage import (Candidates, History, StatefulStage, check_interval, format_number,
+                                keep_most_likely)
 
 MU_MAX = 1074.0  # bits: -log2 of the smallest positive float64 (2^-1074)
 

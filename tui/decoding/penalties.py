@@ -14,16 +14,8 @@ from typing import ClassVar
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
 
-from tui.decoding.stage import (
-    Candidates,
-    History,
-    Stage,
-    check_interval,
-    check_real,
-    check_whole,
-    format_number,
-    keep_most_likely,
-)
+from tui.decoding.stage import (Candidates, History, Stage, check_interval, check_real, check_whole,
+                                format_number, keep_most_likely)
 
 
 @dataclass(frozen=True, slots=True)

@@ -14,14 +14,7 @@ from typing import Any, Sequence
 
 import numpy as np
 
-from tui.decoding.stage import (
-    Candidates,
-    History,
-    RecipeError,
-    Stage,
-    StatefulStage,
-    bound_logits,
-)
+from tui.decoding.stage import Candidates, History, RecipeError, Stage, StatefulStage, bound_logits
 
 INPUT = "input"  # the stage text of a trace's first entry: the model's own distribution
 

@@ -11,14 +11,8 @@ from typing import ClassVar
 
 import numpy as np
 
-from tui.decoding.stage import (
-    LOGIT_BOUND,
-    Candidates,
-    History,
-    Stage,
-    check_interval,
-    format_number,
-)
+from tui.decoding.stage import (LOGIT_BOUND, Candidates, History, Stage, check_interval,
+                                format_number)
 
 
 @dataclass(frozen=True, slots=True)

@@ -23,15 +23,8 @@ from typing import ClassVar
 import numpy as np
 
 from tui.decoding.ranking import first_reaching
-from tui.decoding.stage import (
-    Candidates,
-    History,
-    Stage,
-    check_interval,
-    check_whole,
-    format_number,
-    keep_most_likely,
-)
+from tui.decoding.stage import (Candidates, History, Stage, check_interval, check_whole,
+                                format_number, keep_most_likely)
 
 
 def _dot(a: np.ndarray, b: np.ndarray) -> float:

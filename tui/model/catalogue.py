@@ -22,17 +22,9 @@ from tui.errors import UserError, first_line
 from tui.model import conversion_cache as model_cache
 from tui.model.loaded import LoadedModel
 from tui.model.loading import load_direct, load_transformers
-from tui.model.sources import (
-    CatalogueEntry,
-    HubNotCached,
-    ResolvedSource,
-    WheelMissing,
-    catalogue_path,
-    hf_cache_dir,
-    read_catalogue,
-    resolve,
-    resolve_source,
-)
+from tui.model.sources import (CatalogueEntry, HubNotCached, ResolvedSource, WheelMissing,
+                               catalogue_path, hf_cache_dir, read_catalogue, resolve,
+                               resolve_source)
 from tui.progress import ProgressCallback, ProgressEvent, no_progress
 from tui.settings import FORWARD_ENV, LOADER_ENV, settings
 

@@ -32,12 +32,7 @@ import torch.nn.functional as F
 
 from tui.model import transformers_internals as hf
 from tui.model.kv import KV, WriteMark
-from tui.model.llama_checkpoint import (
-    SUPPORTED_MODELS,
-    LlamaCheckpoint,
-    LlamaShape,
-    config_refusal,
-)
+from tui.model.llama_checkpoint import SUPPORTED_MODELS, LlamaCheckpoint, LlamaShape, config_refusal
 
 STATIC_ROPE = ("default", "linear", "llama3")  # inv_freq fixed at load; dynamic/longrope/yarn refused
 CACHE_BUCKET = 256  # cache capacity grows in steps of this many positions

@@ -13,15 +13,7 @@ from html import escape
 from typing import Iterator
 
 from tui import token_style as ts
-from tui.reports.gather import (
-    Report,
-    Row,
-    fmt,
-    origin_text,
-    recipe_changes,
-    token_cell,
-    visible,
-)
+from tui.reports.gather import Report, Row, fmt, origin_text, recipe_changes, token_cell, visible
 
 _PAGE_CSS = """
 body { font-family: system-ui, -apple-system, "Segoe UI", sans-serif; margin: 2rem auto;

@@ -10,14 +10,7 @@ import re
 from typing import Iterator
 
 from tui import token_style as ts
-from tui.reports.gather import (
-    Report,
-    fmt,
-    origin_text,
-    recipe_changes,
-    token_cell,
-    visible,
-)
+from tui.reports.gather import Report, fmt, origin_text, recipe_changes, token_cell, visible
 
 
 def _cell(text: str) -> str:

@@ -18,23 +18,9 @@ from typing import Any, TextIO
 
 from tui.files import write_atomic
 from tui.sweeps.folder import SweepFolder
-from tui.sweeps.results import (
-    AXIS_LABELS,
-    DIVERSITY,
-    LIKELIHOOD,
-    TABLE_COLUMNS,
-    ResultRow,
-    SweepResults,
-    compute_results,
-    count_text,
-    csv_text,
-    endings_text,
-    fixed_note,
-    interval_text,
-    label_of,
-    markdown_text,
-    scope_title,
-)
+from tui.sweeps.results import (AXIS_LABELS, DIVERSITY, LIKELIHOOD, TABLE_COLUMNS, ResultRow,
+                                SweepResults, compute_results, count_text, csv_text, endings_text,
+                                fixed_note, interval_text, label_of, markdown_text, scope_title)
 
 MIN_CHART_WIDTH = 60  # narrower terminals get no terminal chart
 FILE_WIDTH = 400  # console width when the output is not a terminal: every measure fits

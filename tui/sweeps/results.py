@@ -29,12 +29,7 @@ from typing import Sequence
 from tui.decoding import Recipe
 from tui.numbers import fixed, plain_zero
 from tui.session.record import STOP_REASONS
-from tui.sweeps.metrics import (
-    MEASURE_NAMES,
-    RecipeMeasures,
-    SampleRecord,
-    measure_samples,
-)
+from tui.sweeps.metrics import MEASURE_NAMES, RecipeMeasures, SampleRecord, measure_samples
 from tui.sweeps.pareto import pareto_front
 
 DIVERSITY = "distinct_2"

@@ -20,12 +20,7 @@ from typing import IO, TYPE_CHECKING, Any, Iterable, Iterator
 
 from tui.numbers import json_ready
 from tui.session.record import StepRecord
-from tui.transcripts.headers import (
-    FORMAT,
-    PaneHeader,
-    TranscriptHeader,
-    package_versions,
-)
+from tui.transcripts.headers import FORMAT, PaneHeader, TranscriptHeader, package_versions
 
 if TYPE_CHECKING:
     from tui.session.opening import SessionInfo

@@ -21,21 +21,9 @@ from typing import Any, Callable, Iterator
 
 from tui.errors import UserError, open_input
 from tui.session.record import StepRecord, TopToken
-from tui.transcripts.headers import (
-    FORMAT,
-    RECOVERY_FORMAT,
-    PaneHeader,
-    TranscriptHeader,
-)
-from tui.transcripts.schema import (
-    SchemaError,
-    check_format,
-    check_step,
-    old_spellings,
-    parse_header,
-    parse_step,
-    upgrade_header,
-)
+from tui.transcripts.headers import FORMAT, RECOVERY_FORMAT, PaneHeader, TranscriptHeader
+from tui.transcripts.schema import (SchemaError, check_format, check_step, old_spellings,
+                                    parse_header, parse_step, upgrade_header)
 
 MAX_LINE_BYTES = 16 * 1024 * 1024  # a step line is a few KB; a header holds the prompt
 Warn = Callable[[str], None]

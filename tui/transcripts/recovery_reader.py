@@ -19,12 +19,7 @@ from typing import Iterator
 from tui.errors import UserError
 from tui.session.record import StepRecord
 from tui.transcripts.format import transcript_lines
-from tui.transcripts.headers import (
-    FORMAT,
-    RECOVERY_FORMAT,
-    PaneHeader,
-    TranscriptHeader,
-)
+from tui.transcripts.headers import FORMAT, RECOVERY_FORMAT, PaneHeader, TranscriptHeader
 from tui.transcripts.reader import TranscriptError, Warn, open_lines, step_of
 from tui.transcripts.recovery_log import recovery_dir
 from tui.transcripts.schema import SchemaError, parse_event
