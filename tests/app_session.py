@@ -58,6 +58,20 @@ def idle(app: LogitforkApp) -> bool:
             and not app.redraw_due)
 
 
+async def scanned(pilot: Pilot, app: LogitforkApp) -> None:
+    """Wait until the session is open and the scan for leftover recovery logs has ended."""
+    await wait_until(pilot, lambda: app.stepper is not None and not any(
+        w.group == "recovery" and not w.is_finished for w in app.workers),
+        what="the scan for leftover logs")
+    await pilot.pause()
+
+
+async def opened(pilot: Pilot, app: LogitforkApp, n: int = 0) -> None:
+    """Wait until the session is open, then run `n` steps."""
+    await wait_until(pilot, lambda: app.stepper is not None)
+    await steps(pilot, app, n)
+
+
 async def steps(pilot: Pilot, app: LogitforkApp, n: int) -> None:
     """Press the one-step key n times, waiting for each step to show."""
     for _ in range(n):

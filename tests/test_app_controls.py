@@ -21,9 +21,9 @@ from tui.token_style import EDIT_MARK, FORK_MARK, PART_MARK
 from tui.transcripts.reader import StoredSession
 
 try:
-    from app_session import idle, live_app, steps, wait_until
+    from app_session import idle, live_app, opened, steps, wait_until
 except ImportError:
-    from tests.app_session import idle, live_app, steps, wait_until
+    from tests.app_session import idle, live_app, opened, steps, wait_until
 
 
 @pytest.fixture(scope="module")
@@ -73,8 +73,7 @@ async def test_start_step_pause_and_cursor(lm):
 async def test_inspect_at_the_cursor(lm):
     app = live_app(lm)
     async with app.run_test(size=(100, 30)) as pilot:
-        await wait_until(pilot, lambda: app.stepper is not None)
-        await steps(pilot, app, 4)
+        await opened(pilot, app, 4)
         await pilot.press("left")  # cursor 3: the last token shown is step index 2
         await pilot.press("enter")
         await wait_until(pilot, lambda: isinstance(app.screen, InspectScreen))
@@ -102,8 +101,7 @@ async def test_inspect_at_the_cursor(lm):
 async def test_fork_edit_add_remove(lm):
     app = live_app(lm)
     async with app.run_test(size=(100, 30)) as pilot:
-        await wait_until(pilot, lambda: app.stepper is not None)
-        await steps(pilot, app, 3)
+        await opened(pilot, app, 3)
         # fork the focused (first) pane with a new recipe
         await pilot.press("f")
         assert isinstance(app.screen, RecipeDialog)
@@ -161,8 +159,7 @@ async def test_fork_edit_add_remove(lm):
 async def test_save_and_quit(lm, tmp_path):
     app = live_app(lm, save_folder=tmp_path)
     async with app.run_test(size=(100, 30)) as pilot:
-        await wait_until(pilot, lambda: app.stepper is not None)
-        await steps(pilot, app, 5)
+        await opened(pilot, app, 5)
         # quitting an unsaved session asks; "c" cancels
         await pilot.press("q")
         assert app.is_running and app.screen.query("Button")
@@ -295,8 +292,7 @@ def test_the_seed_check_takes_only_ascii_digits():
 async def test_the_fork_dialog_takes_typed_text_in_both_fields_in_tab_order(lm):
     app = live_app(lm)
     async with app.run_test(size=(100, 30)) as pilot:
-        await wait_until(pilot, lambda: app.stepper is not None)
-        await steps(pilot, app, 2)
+        await opened(pilot, app, 2)
         await pilot.press("f")
         dialog = app.screen
         assert isinstance(dialog, RecipeDialog)
@@ -317,8 +313,7 @@ async def test_the_fork_dialog_takes_typed_text_in_both_fields_in_tab_order(lm):
 async def test_fork_at_the_cursor_keeps_the_text_shown_and_catches_up(lm):
     app = live_app(lm)
     async with app.run_test(size=(100, 30)) as pilot:
-        await wait_until(pilot, lambda: app.stepper is not None)
-        await steps(pilot, app, 6)
+        await opened(pilot, app, 6)
         source = app.view.panes[1]
         from tui.app.key_bar import key_items
 

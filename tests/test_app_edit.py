@@ -16,9 +16,9 @@ from textual.widgets import Static
 from tui.app.confirm_dialog import ConfirmDialog
 
 try:
-    from app_session import live_app, scenario, steps, wait_until
+    from app_session import live_app, opened, scenario, steps, wait_until
 except ImportError:
-    from tests.app_session import live_app, scenario, steps, wait_until
+    from tests.app_session import live_app, opened, scenario, steps, wait_until
 
 
 def as_text(widget: Static, width: int = 100) -> str:
@@ -49,8 +49,7 @@ async def test_the_title_and_note_show_under_the_top_bar(lm):
 async def test_copy_a_pane_to_the_clipboard_or_to_a_file(lm, tmp_path):
     app = live_app(lm, save_folder=tmp_path)
     async with app.run_test(size=(100, 30)) as pilot:
-        await wait_until(pilot, lambda: app.stepper is not None)
-        await steps(pilot, app, 4)
+        await opened(pilot, app, 4)
         await pilot.press("left")  # the text up to the cursor: 3 tokens
         want = "".join(r.text for r in app.view.panes[0].records[:3])
         await pilot.press("c")
@@ -111,8 +110,7 @@ async def test_edit_the_prompt_restarts_the_session_and_the_transcript_says_so(l
     sc = scenario()
     app = live_app(lm, sc, save_folder=tmp_path)
     async with app.run_test(size=(100, 30)) as pilot:
-        await wait_until(pilot, lambda: app.stepper is not None)
-        await steps(pilot, app, 3)
+        await opened(pilot, app, 3)
         await pilot.press("p")
         dialog = app.screen
         assert isinstance(dialog, ScenarioDialog)

@@ -27,9 +27,9 @@ from tui.transcripts.recovery_reader import read_recovery
 from tui.workbench.stepper import Failed, Stepped, Stepper
 
 try:
-    from app_session import idle, live_source, steps, wait_until
+    from app_session import idle, live_source, scanned, steps, wait_until
 except ImportError:
-    from tests.app_session import idle, live_source, steps, wait_until
+    from tests.app_session import idle, live_source, scanned, steps, wait_until
 
 
 @pytest.fixture(scope="module")
@@ -114,10 +114,7 @@ async def test_quitting_without_saving_deletes_the_log_and_nothing_is_offered_ne
     assert not path.exists() and logs(state) == []
     again = make_app(source=live_source(lm), recovery=True)
     async with again.run_test(size=(100, 30)) as pilot:
-        await wait_until(pilot, lambda: again.stepper is not None and not any(
-            w.group == "recovery" and not w.is_finished for w in again.workers),
-            what="the scan for leftover logs")
-        await pilot.pause()
+        await scanned(pilot, again)
         assert not isinstance(again.screen, ConfirmDialog)  # no offer of the thrown-away log
 
 
@@ -196,10 +193,7 @@ async def test_a_log_of_a_running_session_is_not_offered(lm, state):
     left.write_text("\n".join([json.dumps(head), *lines[1:]]) + "\n")
     app = make_app(source=live_source(lm), recovery=True)
     async with app.run_test(size=(100, 30)) as pilot:
-        await wait_until(pilot, lambda: app.stepper is not None and not any(
-            w.group == "recovery" and not w.is_finished for w in app.workers),
-            what="the scan")
-        await pilot.pause()
+        await scanned(pilot, app)
         assert not isinstance(app.screen, ConfirmDialog)  # nothing offered
 
 
