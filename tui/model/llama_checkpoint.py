@@ -26,8 +26,9 @@ from typing import Any, Callable
 
 import torch
 
+from tui.model.conversion_cache import WEIGHTS
+
 SUPPORTED_MODELS = {"llama": "LlamaForCausalLM", "qwen2": "Qwen2ForCausalLM"}
-WEIGHTS = "model.safetensors"
 INDEX = "model.safetensors.index.json"  # the weight map of a sharded folder
 _INTS = ("hidden_size", "num_hidden_layers", "num_attention_heads", "num_key_value_heads",
          "intermediate_size", "vocab_size", "max_position_embeddings")
