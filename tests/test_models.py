@@ -594,3 +594,11 @@ def test_the_embedded_model_cache_is_bit_identical_to_transformers_gguf_load(mon
     assert warm.encode_prompt(None, chat) == lm.encode_prompt(None, chat)
     ids = lm.encode_prompt(texts[0], None)
     assert torch.equal(warm.runner().prefill([ids])[1], LeanRunner(lm.model).prefill([ids])[1])
+
+
+def test_the_command_line_offers_the_dtypes_the_loader_takes():
+    # the options module keeps its own copy so that `--help` imports nothing heavy
+    from tui.commands.session_options import DTYPES as OFFERED
+    from tui.model.catalogue import DTYPES
+
+    assert OFFERED == DTYPES

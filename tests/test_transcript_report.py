@@ -146,7 +146,7 @@ def test_a_headless_chromium_renders_the_report(html_report, tmp_path):
 
     pixels = (matplotlib.image.imread(str(shot))[:, :, :3] * 255).round().astype(int)
     rgb = pixels.reshape(-1, 3)
-    pane_bg = np.array(ts._rgb(ts.PANE_BACKGROUND))
+    pane_bg = np.array(ts.rgb(ts.PANE_BACKGROUND))
     assert (np.abs(rgb - pane_bg).max(axis=1) <= 2).mean() > 0.02  # the inline CSS applied
     assert len(np.unique(rgb, axis=0)) > 100  # text, colours and antialiasing, not a flat page
 

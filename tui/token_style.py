@@ -172,8 +172,6 @@ def rgb(hex_colour: str) -> tuple[int, int, int]:
     return int(h[0:2], 16), int(h[2:4], 16), int(h[4:6], 16)
 
 
-_rgb = rgb  # the old private name, kept for callers that read it
-
 
 def token_colours(rank: int, final_prob: float, *, alternate: bool = False,
                   forced: bool = False, depth: Depth = "truecolor") -> TokenColours:

@@ -92,9 +92,7 @@ class SessionActions:
         elif isinstance(operation, (Restart, EditPrompt)):
             self.follow, self.cursor = True, 0
             if self.source is not None and self.source.prompt_text != self.grid.prompt:
-                self.grid.prompt = self.source.prompt_text  # an edited prompt
-                for widget in self.grid.panes():
-                    widget.prompt = self.source.prompt_text
+                self.grid.prompt = self.source.prompt_text  # an edited prompt (sync passes it on)
                 self.show_scenario(self.source)
 
     # ----- running and the cursor ---------------------------------------------------

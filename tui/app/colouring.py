@@ -35,10 +35,9 @@ WIDE_LEGEND = 150
 SHORT_NAMES = ("own pick", "alternative", "long shot")
 
 
-def console_depth(console: Console, mono: bool = False) -> Depth:
+def console_depth(console: Console) -> Depth:
     """The depth of the terminal behind `console` (Rich found it from TERM, COLORTERM...)."""
-    system = console.color_system  # "truecolor", "256", "standard", "windows" or None
-    return ts.depth_of(system, mono)
+    return ts.depth_of(console.color_system)  # "truecolor", "256", "standard", "windows" or None
 
 
 @dataclass(frozen=True)

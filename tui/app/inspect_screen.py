@@ -13,7 +13,7 @@ with (pane, step, token) to force.
 On a read-only session (a replay) there are no logits: the table comes from the stored
 top-20 alone (kept or cut from the stored final probabilities), the table's heading
 says that ranks past it need the model, and the other recipes are approximated from
-the stored list (`approx_recipes.py`) and labelled so; forcing is off, with the reason.
+the stored list (`tui/session/approx_recipes.py`) and labelled so; forcing is off, with the reason.
 """
 
 from __future__ import annotations
@@ -97,6 +97,7 @@ class InspectScreen(Screen[tuple[int, int, int] | None]):
         self.step = step
         self.record = self.pane.records[step]
         self.scheme = scheme
+        self._recipe_note = ""  # why the other recipes' rows are approximate, if they are
         self.rows: tuple[TopRow, ...] = top_rows(self.record)
         self.recipes: tuple[RecipeRow, ...] | None = None
         self.analysed = False
@@ -245,7 +246,7 @@ class InspectScreen(Screen[tuple[int, int, int] | None]):
     def _fill_recipes(self, note: str | None = None) -> None:
         if note is not None:
             self._recipe_note = note
-        note = getattr(self, "_recipe_note", "")
+        note = self._recipe_note
         table = self.query_one("#recipe-table", DataTable)
         table.clear()
         if self.recipes is None:

@@ -73,7 +73,8 @@ def time_text(seconds: float) -> str:
         return f"{max(1, round(seconds))} s"
     if seconds < 3600:
         return f"{round(seconds / 60)} min"
-    return f"{int(seconds // 3600)} h {round(seconds % 3600 / 60)} min"
+    hours, minutes = divmod(round(seconds / 60), 60)
+    return f"{hours} h {minutes} min"
 
 
 class TopBar(Static):

@@ -94,8 +94,7 @@ def bench_cluster(model: str, *, samples: int = 32, chunk_rows: int = 8,
     prompts = resolve_prompts(spec)
     lm = load_model(model)
     job = build_job(spec, prompts, lm)
-    sweeper = SweepRunner(lm.runner(), lm.decode, job, eos_ids=lm.eos_ids,
-                          max_context=lm.max_context)
+    sweeper = SweepRunner.for_model(lm, job)
     chunks = job.chunks()
     sweeper.run_chunk(chunks[0])  # warm-up, as each worker's below: first passes are slow
     start = time.perf_counter()

@@ -2,8 +2,8 @@
 
 Library code reports progress through `tui.progress.ProgressCallback` and never draws;
 a command hands it a `ProgressDisplay` (it is callable). On a terminal each task gets
-one bar with its amount, note and time left, opened when its first event arrives, so
-that a display with nothing to show draws nothing. When stderr is a file or a pipe (a
+one bar with its amount and note (which carries the time left), opened when its first
+event arrives, so that a display with nothing to show draws nothing. When stderr is a file or a pipe (a
 job's log), a plain line is written every `log_every` seconds and when a task ends;
 `log_every=None` writes nothing there. `units` limits the events shown (the model
 loader shows only byte-counted work: a first conversion, never a warm start).
@@ -76,12 +76,10 @@ class ProgressDisplay:
     def _update_bar(self, event: ProgressEvent) -> None:
         if self._bars is None:
             from rich.console import Console
-            from rich.progress import (BarColumn, Progress, TaskProgressColumn, TextColumn,
-                                       TimeRemainingColumn)
+            from rich.progress import BarColumn, Progress, TaskProgressColumn, TextColumn
 
             self._bars = Progress(TextColumn("{task.description}"), BarColumn(),
                                   TaskProgressColumn(), TextColumn("{task.fields[amount]}"),
-                                  TimeRemainingColumn(),
                                   TextColumn("{task.fields[note]}", style="dim"),
                                   console=Console(file=self.stream, stderr=True), transient=False)
             self._bars.start()

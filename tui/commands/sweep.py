@@ -82,8 +82,7 @@ def _run_here(args: argparse.Namespace, spec: SweepSpec, prompts: tuple[Prompt, 
     folder = SweepFolder.open_for_run(out, manifest, spec.source_text, versions)
     todo = _todo(folder, job, out)
     if todo:
-        sweeper = SweepRunner(runner, lm.decode, job, eos_ids=lm.eos_ids,
-                              max_context=lm.max_context)
+        sweeper = SweepRunner.for_model(lm, job)
         with ProgressDisplay() as display:  # its last line stays, also when interrupted
             progress = SweepProgress(sum(len(c.rows) for c in todo), job.max_new_tokens,
                                      chunks=len(todo), report=display, say=display.say,

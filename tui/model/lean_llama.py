@@ -12,7 +12,7 @@ runs the same computation with everything prepared once:
   freed once packed (a transformers model keeps its own); plain `F.linear` where oneDNN
   is missing;
 - rotary cos/sin tables precomputed per position;
-- a preallocated KV cache written in place (ownership rule: `tui.model.forward.KV`);
+- a preallocated KV cache written in place (ownership rule: `tui.model.kv.KV`);
 - SDPA attention over the cache; at decode the query heads of a group share one kv head
   by being folded into query rows, so no kv head is ever repeated.
 

@@ -88,8 +88,7 @@ class ChunkWorker:
             lm = load_model(model, allow_pickle=allow_pickle)
             job = build_job(spec, prompts, lm)
             runner = lm.runner()
-            self._runner = SweepRunner(runner, lm.decode, job, eos_ids=lm.eos_ids,
-                                       max_context=lm.max_context)
+            self._runner = SweepRunner.for_model(lm, job)
             self._chunks = job.chunks()
             self._info = WorkerInfo(socket.gethostname(), os.getpid(), threads,
                                     package_versions(),
@@ -217,9 +216,6 @@ class WorkerPool:
                  allow_pickle: bool, spec: SweepSpec, prompts: tuple[Prompt, ...],
                  threads: int | None = None) -> None:
         ray = _import_ray()
-        for name, value in (("--workers", workers), ("--threads", threads)):
-            if value is not None and value < 1:
-                raise UserError(f"{name}: must be at least 1, got {value}")
         cpus = max(connection.cpus, 1)
         count = workers or max(1, cpus // (threads or 1))
         self.threads = threads or max(1, cpus // count)

@@ -20,7 +20,7 @@ from __future__ import annotations
 
 import hashlib
 from dataclasses import dataclass, field
-from typing import Callable, Protocol, Sequence
+from typing import TYPE_CHECKING, Callable, Protocol, Sequence
 
 import numpy as np
 import torch
@@ -31,6 +31,9 @@ from tui.session.record import IncrementalDecoder
 from tui.session.row_step import RawStep, StopRules, emit
 from tui.sweeps.metrics import SampleRecord
 from tui.sweeps.spec import DEFAULT_CHUNK_ROWS, samples_for
+
+if TYPE_CHECKING:
+    from tui.model.loaded import LoadedModel
 
 DecodeFn = Callable[[Sequence[int]], str]
 StepHook = Callable[[int, int], None]  # (rows that emitted a token, rows that ended this step)
@@ -137,6 +140,11 @@ class SweepRunner:
                                 job.max_new_tokens, max_context)
         self._recipes = [Recipe.parse(r) for r in job.recipes]
         self._prefilled: tuple[int, KV, torch.Tensor] | None = None  # the last prompt's
+
+    @classmethod
+    def for_model(cls, lm: "LoadedModel", job: SweepJob) -> "SweepRunner":
+        """The runner on a loaded model's forward path, stop tokens and context."""
+        return cls(lm.runner(), lm.decode, job, eos_ids=lm.eos_ids, max_context=lm.max_context)
 
     def prompt_state(self, prompt_index: int) -> tuple[KV, torch.Tensor]:
         """The prompt's cache (1 row) and next-token logits (V,), prefilled once."""
