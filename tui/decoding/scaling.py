@@ -41,13 +41,15 @@ class Temperature(Stage):
         if self.value == 1.0:
             return cands
         logits = cands.logits  # changed in place: the chain owns it
-        high = logits.max()
-        if max(high, -logits.min()) > LOGIT_BOUND * self.value:  # a quotient would leave the range
-            logits -= high
-            with np.errstate(over="ignore"):
-                np.divide(logits, self.value, out=logits)
-            np.maximum(logits, -LOGIT_BOUND, out=logits)
-            return cands
+        # logits are within +-LOGIT_BOUND already, so only T < 1 can push a quotient out
+        if self.value < 1.0:
+            high = logits.max()
+            if max(high, -logits.min()) > LOGIT_BOUND * self.value:
+                logits -= high
+                with np.errstate(over="ignore"):
+                    np.divide(logits, self.value, out=logits)
+                np.maximum(logits, -LOGIT_BOUND, out=logits)
+                return cands
         np.divide(logits, self.value, out=logits)
         return cands
 

@@ -28,16 +28,27 @@ class RawStep:
 
     @classmethod
     def of(cls, logits: np.ndarray) -> "RawStep":
-        x = logits.astype(np.float64)
-        x -= x.max(axis=-1, keepdims=True)
-        e = np.exp(x)
-        total = e.sum(axis=-1, keepdims=True)
+        x, e, total = _shifted_exp(logits)
         probs = e / total
         logp = x - np.log(total)
         with np.errstate(invalid="ignore"):
             terms = np.where(probs > 0, probs * logp, 0.0)
         entropy = np.maximum(-terms.sum(axis=-1), 0.0)  # never -0.0
         return cls(logp, probs, entropy)
+
+
+def log_softmax(logits: np.ndarray) -> np.ndarray:
+    """The model's own log-probabilities alone (B, V), float64: what the sweep runner keeps."""
+    x, _e, total = _shifted_exp(logits)
+    return x - np.log(total)
+
+
+def _shifted_exp(logits: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(x - max, exp of it, its row sums), float64."""
+    x = logits.astype(np.float64)
+    x -= x.max(axis=-1, keepdims=True)
+    e = np.exp(x)
+    return x, e, e.sum(axis=-1, keepdims=True)
 
 
 @dataclass(frozen=True)

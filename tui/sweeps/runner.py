@@ -28,7 +28,7 @@ import torch
 from tui.decoding import Recipe, Sampler
 from tui.model.kv import KV
 from tui.session.record import IncrementalDecoder
-from tui.session.row_step import RawStep, StopRules, emit
+from tui.session.row_step import StopRules, emit, log_softmax
 from tui.sweeps.metrics import SampleRecord
 from tui.sweeps.spec import DEFAULT_CHUNK_ROWS, samples_for
 
@@ -169,7 +169,7 @@ class SweepRunner:
         step = 0
         while live:
             logits_np = logits.float().numpy()  # (B, V)
-            logp = RawStep.of(logits_np).logp  # the raw model's
+            logp = log_softmax(logits_np)  # the raw model's
             tokens = [self._emit(rows[i], step, prompt, logits_np[b], logp[b])
                       for b, i in enumerate(live)]
             keep = [b for b, i in enumerate(live) if rows[i].ending is None]

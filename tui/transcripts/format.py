@@ -46,11 +46,6 @@ def header_of(view: "SessionView", info: "SessionInfo",
         prompt_edits=info.prompt_edits)
 
 
-def header(view: "SessionView", info: "SessionInfo", prompt_ids: Iterable[int]) -> dict[str, Any]:
-    """The header line of a live session, as a JSON object."""
-    return header_of(view, info, prompt_ids).to_json()
-
-
 def dumps(obj: dict[str, Any]) -> str:
     """One JSON line: strict JSON (no NaN, no -0.0), UTF-8 text kept as is."""
     return json.dumps(json_ready(obj), ensure_ascii=False, allow_nan=False)
