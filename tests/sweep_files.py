@@ -42,15 +42,15 @@ SLOW_CHUNKS = """\
 import time
 import tui.sweeps.folder as folder
 
-_append = folder.SweepFolder.append_chunk
+_append = folder.SweepFolder.append_chunks
 
 
-def _append_then_wait(self, index, samples):
-    _append(self, index, samples)
+def _append_then_wait(self, written):
+    _append(self, written)
     time.sleep(2.0)
 
 
-folder.SweepFolder.append_chunk = _append_then_wait
+folder.SweepFolder.append_chunks = _append_then_wait
 """
 
 

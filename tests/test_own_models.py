@@ -248,25 +248,33 @@ def test_the_top_bar_shows_the_dtype_and_the_time_to_the_end():
     assert (time_text(40), time_text(3725)) == ("40 s", "1 h 2 min")
 
 
-def test_a_sweep_batch_is_checked_against_free_memory(qwen_dir, tmp_path):
-    from tui.sweeps.plan import batch_rows, check_batch
+def test_a_sweep_batch_is_chosen_from_free_memory(qwen_dir):
+    from tui.sweeps.plan import MAX_BATCH_ROWS, choose_batch
     from tui.sweeps.runner import SweepJob
-    from tui.sweeps.spec import SweepSpec
 
     lm = load_model(str(qwen_dir))
-    job = SweepJob(((1, 2, 3, 4),), ("greedy",), samples=8, max_new_tokens=6, chunk_rows=8)
+    job = SweepJob(((1, 2, 3, 4),), ("greedy", "top_k=5"), samples=99, max_new_tokens=6,
+                   chunk_rows=8)  # 1 + 99 = 100 rows per prompt
     # worked by hand: 2 layers x 2 kv heads x 16 dims x 10 positions x (k, v) x 4 bytes
     # = 5,120 bytes of cache, plus 3 float64 vectors of the 300-token vocabulary (7,200)
     per_row = 5_120 + 7_200
-    fits, line = batch_rows(lm, job, available=100 * per_row)
-    assert fits == 50 and line.startswith("batch: 8 rows per forward pass (chunk_rows); memory allows 50")
-    spec = SweepSpec(title="t", model=str(qwen_dir), prompts=("x",), scenario=None,
-                     explicit_recipes=("greedy",), grid=(), recipe_texts=("greedy",), samples=8,
-                     max_new_tokens=6, chunk_rows=8, path=tmp_path / "s.toml")
-    assert check_batch(spec, lm, job, available=100 * per_row) == line
-    with pytest.raises(UserError, match=r"s.toml: chunk_rows: 8 rows per forward pass do not fit .* "
-                                        r"set chunk_rows = 5 or less"):
-        check_batch(spec, lm, job, available=10 * per_row)
+    rows, room = choose_batch(lm, job, available=100 * per_row)  # half of it holds 50 rows
+    assert rows == 50 and room.startswith("batch: 50 rows per forward pass (memory allows 50: ")
+    assert "at 10 positions, half of" in room
+    rows, line = choose_batch(lm, job, available=1000 * per_row)  # 500 fit; a prompt has 100
+    assert rows == 100 and "(a prompt has 100 rows; memory allows 500" in line
+    big = SweepJob(((1, 2, 3, 4),), ("top_k=5",), samples=900, max_new_tokens=6)
+    assert choose_batch(lm, big, available=10_000 * per_row)[0] == MAX_BATCH_ROWS
+    assert choose_batch(lm, job, requested=7, available=100 * per_row) == \
+        (7, "batch: 7 rows per forward pass (--batch-rows; " + room.split("(", 1)[1])
+    with pytest.raises(UserError, match=r"^--batch-rows: 60 rows per forward pass do not fit in "
+                                        r"memory with model .*; give 50 or less \(memory allows 50"):
+        choose_batch(lm, job, requested=60, available=100 * per_row)
+    # a resumed folder keeps its first run's batch while it fits, and says when it cannot
+    assert choose_batch(lm, job, recorded=30, available=100 * per_row)[1].startswith(
+        "batch: 30 rows per forward pass (as the folder's first run; memory allows 50")
+    rows, line = choose_batch(lm, job, recorded=80, available=100 * per_row)
+    assert rows == 50 and "the folder's first run used 80" in line
 
 
 def test_auto_keeps_float32_for_speed_without_native_bfloat16():

@@ -16,6 +16,7 @@ from __future__ import annotations
 import contextlib
 import json
 import os
+import re
 import shutil
 import signal
 import socket
@@ -138,6 +139,9 @@ def test_a_cluster_run_has_the_numbers_of_the_one_process_run(on_cluster, refere
     assert_same_numbers(out, reference[0])
     assert stdout == reference[1]  # the printed tables
     assert "ray: 2 worker(s) on 1 node(s), 1 thread(s) each" in err
+    # each worker holds a prompt's 5 rows (greedy once, 4 samples) in one forward batch
+    assert ", 5 rows per forward pass\n" in err and "\nbatch: 5 rows per forward pass (a prompt" in err
+    assert json.loads((out / "versions.json").read_text())["batch_rows"] == 5
     assert "chunks 4/4" in err and "100%" in err  # the progress line counts every worker's chunks
     versions = json.loads((out / "versions.json").read_text())
     assert versions["cluster"]["workers"] == 2 and versions["cluster"]["threads_per_worker"] == 1
@@ -169,9 +173,10 @@ def test_a_killed_driver_resumes_and_a_killed_worker_costs_only_its_chunk(
                      "--ray", cluster, "--workers", "2")
     assert rc == 0, err
     assert f"{len(written)} of 4 chunks already written" in err
-    chunk, pid = killed[0]
-    assert f"(pid {pid}) was lost while it ran chunk {chunk}" in err
-    assert f"chunk {chunk} runs again" in err
+    chunk, pid = killed[0]  # the first chunk of the batch it was sent
+    lost = re.search(rf"\(pid {pid}\) was lost while it ran (chunks? {chunk}\b[\d, ]*) \(", err)
+    assert lost is not None, err
+    assert f"; {lost.group(1)} run" in err  # "runs again" / "run again"
     assert "gone for good" not in err  # a restarted worker is asked again until it is back
     assert stdout == on_cluster[1]  # the tables only: no word from Ray on stdout
     # the same folder as the undisturbed run, bit for bit (the same threads per worker)

@@ -27,7 +27,7 @@ from tui.progress import format_duration
 from tui.session.record import STOP_EOS, STOP_LENGTH, STOP_REASONS, STOP_STRING
 from tui.sweeps.folder import SweepFolder
 from tui.sweeps.progress import SweepProgress
-from tui.sweeps.runner import SweepJob, SweepRunner, row_uniforms
+from tui.sweeps.runner import Chunk, SweepJob, SweepRunner, plan_batches, row_uniforms
 
 try:
     from sweep_files import PROMPTS, write_sweep
@@ -199,6 +199,41 @@ def test_samples_do_not_depend_on_the_chunking(lm):
         runs.append(found)
     assert runs[0] == runs[1]  # chunk sizes differ, and the chunks ran last to first
     assert len(set(runs[0].values())) == 8  # the samples really differ
+
+
+def test_batches_join_the_chunks_of_one_prompt_and_keep_their_plan_on_resume():
+    job = SweepJob(((1, 2), (3,)), ("greedy", "top_k=5"), samples=4, max_new_tokens=2,
+                   chunk_rows=2)  # 5 rows a prompt: chunks of 2, 2, 1 rows, prompt by prompt
+    chunks = job.chunks()
+    assert [(c.index, c.prompt_index, len(c.rows)) for c in chunks] == \
+        [(0, 0, 2), (1, 0, 2), (2, 0, 1), (3, 1, 2), (4, 1, 2), (5, 1, 1)]
+    ids = lambda batches: [[c.index for c in b] for b in batches]  # noqa: E731
+    assert ids(plan_batches(chunks, 4)) == [[0, 1], [2], [3, 4], [5]]
+    assert ids(plan_batches(chunks, 64)) == [[0, 1, 2], [3, 4, 5]]  # never across prompts
+    assert ids(plan_batches(chunks, 1)) == [[0], [1], [2], [3], [4], [5]]  # each in parts
+    # written chunks are left out of the batches an unbroken run would have run
+    assert ids(plan_batches(chunks, 4, done={0, 4})) == [[1], [2], [3], [5]]
+    assert ids(plan_batches(chunks[3:], 64, done={3, 4, 5})) == []
+
+
+def test_a_batch_writes_each_chunk_as_its_own_run_would(lm):
+    prompts = tuple(tuple(lm.encode_prompt(p, None)) for p in PROMPTS)
+    job = SweepJob(prompts, ("temperature=0.9 top_p=0.9", "min_p=0.2"), samples=3,
+                   max_new_tokens=6, seed=5, chunk_rows=2)
+    sweeper = SweepRunner(make_runner(lm.model), lm.decode, job, eos_ids=lm.eos_ids,
+                          max_context=lm.max_context)
+    alone = {c.index: sweeper.run_chunk(c) for c in job.chunks()}
+    for rows in (6, 4, 1):  # whole prompts; chunks joined; every chunk cut into rows
+        got = {c.index: r for b in plan_batches(job.chunks(), rows)
+               for c, r in sweeper.run_batch(b, rows)}
+        assert sorted(got) == sorted(alone)
+        for index, records in alone.items():
+            for a, b in zip(records, got[index], strict=True):
+                assert (a.recipe, a.sample_index, a.token_ids, a.text) == \
+                       (b.recipe, b.sample_index, b.token_ids, b.text)
+                assert np.allclose(a.logprobs, b.logprobs, rtol=0, atol=1e-4)  # float sums only
+    with pytest.raises(ValueError, match="share one prompt"):
+        sweeper.run_batch((Chunk(0, 0, ((0, 0),)), Chunk(1, 1, ((0, 0),))), 4)
 
 
 def test_row_uniforms_are_a_pure_function_of_their_key():

@@ -2,15 +2,17 @@
 
 `connect` joins a cluster (`auto`, ``host:port``, ``ray://host:port``) or starts a
 local one (`local`); `WorkerPool` starts one actor per worker, each of which loads
-the model once (its torch threads set so that the workers share the cores) and then
-decodes whole chunks of the sweep with the one-process `SweepRunner.run_chunk`. The
-driver hands out one chunk per idle worker and writes every chunk that comes back,
-so the folder, its resume, `sweep-merge` and the reports are those of a local run.
+the model once (its torch threads set so that the workers share the cores), works
+out how many rows fit in its memory, and then decodes whole batches of chunks with
+the one-process `SweepRunner.run_batch`. The pool's batch is the smallest any worker
+can hold, so a batch runs alike wherever it lands. The driver hands out one batch per
+idle worker and writes every chunk that comes back, so the folder, its resume,
+`sweep-merge` and the reports are those of a local run.
 
-Faults: a worker process that dies (killed, out of memory) costs only the chunk it
+Faults: a worker process that dies (killed, out of memory) costs only the batch it
 held: Ray restarts the actor (`WORKER_RESTARTS` times, reloading the model) and the
-chunk goes back to the front of the queue, for whichever worker is free first. A
-chunk lost `CHUNK_ATTEMPTS` times, every worker gone, or a worker raising an error
+batch goes back to the front of the queue, for whichever worker is free first. A
+batch lost `CHUNK_ATTEMPTS` times, every worker gone, or a worker raising an error
 ends the run with a `UserError`; the chunks already written stay for a resume.
 
 Ray is imported here only, inside functions: importing this module loads neither Ray
@@ -32,20 +34,20 @@ from tui.errors import UserError, first_line
 
 if TYPE_CHECKING:
     from tui.sweeps.metrics import SampleRecord
-    from tui.sweeps.runner import Chunk, SweepJob
+    from tui.sweeps.runner import Batch, Chunk, SweepJob
     from tui.sweeps.spec import Prompt, SweepSpec
 
 LOCAL = "local"
 RAY_PIN = "ray[client]==2.60.0"
 WORKER_RESTARTS = 3  # times Ray restarts one worker's process after it dies
-CHUNK_ATTEMPTS = 3  # a chunk lost this many times (its worker died each time) ends the run
+CHUNK_ATTEMPTS = 3  # a batch lost this many times (its worker died each time) ends the run
 READY_SECONDS = 600.0  # a worker that has not loaded its model by then ends the run
 POLL_SECONDS = 0.5  # the driver wakes this often while it waits (Ctrl-C stays prompt)
 RESTART_POLL_SECONDS = 0.5  # how often a restarting worker is asked whether it is back
 # Ray kept quiet and offline: no usage report (the dashboard is never started).
 QUIET_ENVIRONMENT = {"RAY_USAGE_STATS_ENABLED": "0"}
 
-WriteChunk = Callable[["Chunk", "list[SampleRecord]"], None]
+WriteBatch = Callable[["list[tuple[Chunk, list[SampleRecord]]]"], None]
 Note = Callable[[str], None]
 
 
@@ -60,6 +62,8 @@ class WorkerInfo:
     model: dict[str, str]  # name, source, dtype
     forward: str  # the forward path's class name
     job: SweepJob  # the sweep as the worker encoded it
+    batch_rows: int  # rows per forward pass its memory holds (or --batch-rows)
+    batch_line: str  # `tui.sweeps.plan.choose_batch`'s line on the worker
 
     def where(self) -> str:
         return f"{self.host} (pid {self.pid})"
@@ -73,7 +77,8 @@ class ChunkWorker:
     """
 
     def __init__(self, model: str, allow_pickle: bool, spec: SweepSpec,
-                 prompts: tuple[Prompt, ...], threads: int) -> None:
+                 prompts: tuple[Prompt, ...], threads: int, batch_rows: int | None,
+                 recorded: int | None) -> None:
         import torch
 
         torch.set_num_threads(threads)
@@ -82,18 +87,19 @@ class ChunkWorker:
         try:
             from tui.model.catalogue import load_model
             from tui.sweeps.folder import package_versions
-            from tui.sweeps.plan import build_job
+            from tui.sweeps.plan import build_job, choose_batch
             from tui.sweeps.runner import SweepRunner
 
             lm = load_model(model, allow_pickle=allow_pickle)
             job = build_job(spec, prompts, lm)
+            rows, line = choose_batch(lm, job, batch_rows, recorded)
             runner = lm.runner()
             self._runner = SweepRunner.for_model(lm, job)
             self._chunks = job.chunks()
             self._info = WorkerInfo(socket.gethostname(), os.getpid(), threads,
                                     package_versions(),
                                     {"name": lm.name, "source": lm.source, "dtype": lm.dtype},
-                                    type(runner).__name__, job)
+                                    type(runner).__name__, job, rows, line)
         except UserError as exc:
             self._error = str(exc)
         except Exception as exc:  # noqa: BLE001 - any load failure becomes one line
@@ -105,11 +111,13 @@ class ChunkWorker:
             return f"{socket.gethostname()} (pid {os.getpid()}): {self._error}"
         return self._info
 
-    def run(self, index: int) -> list[SampleRecord]:
-        """Decode chunk `index` of the sweep (an index into `SweepJob.chunks`)."""
+    def run(self, indices: list[int], batch_rows: int) -> list[list[SampleRecord]]:
+        """Decode the chunks `indices` (into `SweepJob.chunks`, one prompt's) as one batch of
+        at most `batch_rows` rows; their records, chunk by chunk."""
         if self._info is None:
             raise RuntimeError(f"the model did not load: {self._error}")
-        return self._runner.run_chunk(self._chunks[index])
+        batch = [self._chunks[i] for i in indices]
+        return [records for _, records in self._runner.run_batch(batch, batch_rows)]
 
 
 @dataclass(frozen=True)
@@ -207,14 +215,15 @@ def connect(address: str, wanted_cpus: int = 1) -> Iterator[Connection]:
 
 
 class WorkerPool:
-    """One Ray actor per worker, each with the model loaded; hands out chunks and retries lost ones."""
+    """One Ray actor per worker, each with the model loaded; hands out batches and retries lost ones."""
 
-    # Called as (chunk index, worker pid) just after a chunk is sent: a hook for tests.
+    # Called as (first chunk index, worker pid) just after a batch is sent: a hook for tests.
     on_dispatch: Callable[[int, int], None] | None = None
 
     def __init__(self, connection: Connection, workers: int | None, *, model: str,
                  allow_pickle: bool, spec: SweepSpec, prompts: tuple[Prompt, ...],
-                 threads: int | None = None) -> None:
+                 threads: int | None = None, batch_rows: int | None = None,
+                 recorded: int | None = None) -> None:
         ray = _import_ray()
         cpus = max(connection.cpus, 1)
         count = workers or max(1, cpus // (threads or 1))
@@ -225,10 +234,13 @@ class WorkerPool:
         self.connection = connection
         actor = ray.remote(num_cpus=self.threads, max_restarts=WORKER_RESTARTS,
                            max_task_retries=0)(ChunkWorker)
-        self._actors = [actor.remote(model, allow_pickle, spec, prompts, self.threads)
-                        for _ in range(count)]
+        self._actors = [actor.remote(model, allow_pickle, spec, prompts, self.threads, batch_rows,
+                                     recorded) for _ in range(count)]
         self.infos = self._wait_ready(ray, model)
         self.job: SweepJob = self.infos[0].job
+        smallest = min(self.infos, key=lambda i: i.batch_rows)
+        self.batch_rows = smallest.batch_rows
+        self.batch_line = f"{smallest.batch_line} on {smallest.where()}"
 
     def _wait_ready(self, ray: Any, model: str) -> list[WorkerInfo]:
         from ray.exceptions import RayError
@@ -268,56 +280,60 @@ class WorkerPool:
     def describe(self) -> str:
         hosts = len({i.host for i in self.infos})
         return (f"{len(self._actors)} worker(s) on {hosts} node(s), {self.threads} thread(s) each, "
-                f"model {self.infos[0].model['name']}")
+                f"model {self.infos[0].model['name']}, {self.batch_rows} rows per forward pass")
 
-    def run(self, todo: Sequence[Chunk], write: WriteChunk, note: Note) -> None:
-        """Decode every chunk of `todo` on the workers; `write` each one as it comes back.
+    def run(self, batches: Sequence[Batch], write: WriteBatch, note: Note) -> None:
+        """Decode every batch (`tui.sweeps.runner.plan_batches` at `batch_rows`) on the
+        workers; `write` each one's chunks as it comes back.
 
-        Chunks come back in the order they finish, not in index order (the folder's
+        Batches come back in the order they finish, not in index order (the folder's
         format allows any order). A worker's death is told through `note`.
         """
         import ray
         from ray.exceptions import RayActorError, RayError
 
-        queue: deque[Chunk] = deque(todo)
+        queue: deque[Batch] = deque(batches)
         idle: deque[int] = deque(range(len(self._actors)))
-        running: dict[Any, tuple[int, Chunk]] = {}  # result ref -> (worker slot, chunk)
+        running: dict[Any, tuple[int, Batch]] = {}  # result ref -> (worker slot, batch)
         restarting: dict[Any, int] = {}  # ready probe of a restarted worker -> slot
-        lost: Counter[int] = Counter()
+        lost: Counter[int] = Counter()  # by the batch's first chunk index
         while queue or running:
             while idle and queue:
-                slot, chunk = idle.popleft(), queue.popleft()
-                running[self._actors[slot].run.remote(chunk.index)] = (slot, chunk)
+                slot, batch = idle.popleft(), queue.popleft()
+                indices = [c.index for c in batch]
+                running[self._actors[slot].run.remote(indices, self.batch_rows)] = (slot, batch)
                 if self.on_dispatch is not None:
-                    self.on_dispatch(chunk.index, self.infos[slot].pid)
+                    self.on_dispatch(batch[0].index, self.infos[slot].pid)
             if not running and not restarting:
-                raise UserError(f"--ray: every worker was lost; {len(queue)} chunk(s) not run; "
+                left = sum(len(b) for b in queue)
+                raise UserError(f"--ray: every worker was lost; {left} chunk(s) not run; "
                                 "the chunks written stay: run the same command again to resume")
             done, _ = ray.wait([*running, *restarting], num_returns=1, timeout=POLL_SECONDS)
             for ref in done:
                 if ref in restarting:
                     self._rejoin(ray, restarting.pop(ref), ref, restarting, idle, note)
                     continue
-                slot, chunk = running.pop(ref)
-                where = self.infos[slot].where()
+                slot, batch = running.pop(ref)
+                where, what = self.infos[slot].where(), chunk_list(batch)
                 try:
-                    samples = ray.get(ref)
+                    results = ray.get(ref)
                 except RayActorError as exc:
-                    lost[chunk.index] += 1
-                    if lost[chunk.index] >= CHUNK_ATTEMPTS:
-                        raise UserError(f"--ray: chunk {chunk.index} was lost {CHUNK_ATTEMPTS} "
-                                        f"times (its worker died each time; last on {where}); "
-                                        "the chunks written stay for a resume") from None
-                    queue.appendleft(chunk)
+                    lost[batch[0].index] += 1
+                    if lost[batch[0].index] >= CHUNK_ATTEMPTS:
+                        raise UserError(f"--ray: {what} was lost {CHUNK_ATTEMPTS} times (its "
+                                        f"worker died each time; last on {where}); the chunks "
+                                        "written stay for a resume") from None
+                    queue.appendleft(batch)
                     restarting[self._actors[slot].ready.remote()] = slot
-                    note(f"worker {where} was lost while it ran chunk {chunk.index} "
-                         f"({type(exc).__name__}); chunk {chunk.index} runs again")
+                    again = "runs again" if len(batch) == 1 else "run again"
+                    note(f"worker {where} was lost while it ran {what} "
+                         f"({type(exc).__name__}); {what} {again}")
                     continue
                 except RayError as exc:
                     cause = getattr(exc, "cause", None) or exc
-                    raise UserError(f"--ray: chunk {chunk.index} failed on {where}: "
+                    raise UserError(f"--ray: {what} failed on {where}: "
                                     f"{type(cause).__name__}: {first_line(cause)}") from None
-                write(chunk, samples)
+                write(list(zip(batch, results, strict=True)))
                 idle.append(slot)
 
     def close(self) -> None:
@@ -352,6 +368,12 @@ class WorkerPool:
         idle.append(slot)
 
 
+def chunk_list(batch: "Batch") -> str:
+    """``chunk 4`` or ``chunks 4, 5, 6``: the chunks of a batch, for messages."""
+    indices = ", ".join(str(c.index) for c in batch)
+    return f"chunk {indices}" if len(batch) == 1 else f"chunks {indices}"
+
+
 def _check_alike(infos: Sequence[WorkerInfo]) -> None:
     """Refuse workers whose samples could differ: other packages, model or encoded prompts."""
     first = infos[0]
@@ -374,7 +396,8 @@ def _check_alike(infos: Sequence[WorkerInfo]) -> None:
 @contextmanager
 def open_pool(address: str, workers: int | None, *, model: str, allow_pickle: bool,
               spec: SweepSpec, prompts: tuple[Prompt, ...],
-              threads: int | None = None) -> Iterator[WorkerPool]:
+              threads: int | None = None, batch_rows: int | None = None,
+              recorded: int | None = None) -> Iterator[WorkerPool]:
     """Connect and start the workers; every check is done before this yields.
 
     Losing the cluster itself (the head node, the network) ends the run in one line;
@@ -386,7 +409,7 @@ def open_pool(address: str, workers: int | None, *, model: str, allow_pickle: bo
         try:
             yield WorkerPool(connection, workers, model=model_for_workers(model),
                              allow_pickle=allow_pickle, spec=spec, prompts=prompts,
-                             threads=threads)
+                             threads=threads, batch_rows=batch_rows, recorded=recorded)
         except (ConnectionError, RayError) as exc:
             raise UserError(f"--ray: lost the cluster at {address} ({type(exc).__name__}: "
                             f"{first_line(exc)}); the chunks written stay: run the same "

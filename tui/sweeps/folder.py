@@ -104,6 +104,15 @@ def json_text(data: Any) -> str:
     return json.dumps(data, indent=2, ensure_ascii=False) + "\n"
 
 
+def recorded_batch_rows(folder: Path) -> int | None:
+    """The rows per forward pass of the folder's first run (versions.json), if it says."""
+    try:
+        rows = json.loads((folder / VERSIONS).read_text(encoding="utf-8")).get("batch_rows")
+    except (OSError, ValueError, AttributeError):
+        return None
+    return rows if isinstance(rows, int) and not isinstance(rows, bool) and rows >= 1 else None
+
+
 def read_manifest(folder: Path) -> Manifest:
     path = folder / MANIFEST
     if not path.is_file():
@@ -232,15 +241,18 @@ class SweepFolder:
         _check_chunks(self.path / SAMPLES, self.manifest, chunks)
         return chunks
 
-    def append_chunk(self, index: int, samples: Sequence[SampleRecord]) -> None:
-        """Append one finished chunk as a closed unit, then flush and fsync."""
-        if not self.manifest.owns(index):
-            raise ValueError(f"chunk {index} is not part of {shard_text(self.manifest.shard)}")
+    def append_chunks(self, written: Sequence[tuple[int, Sequence[SampleRecord]]]) -> None:
+        """Append finished chunks (index, samples), each a closed unit, in one write; then
+        flush and fsync. A batch's chunks go in together, so a run stopped between two
+        batches leaves whole batches behind."""
+        for index, _ in written:
+            if not self.manifest.owns(index):
+                raise ValueError(f"chunk {index} is not part of {shard_text(self.manifest.shard)}")
         with open(self.path / SAMPLES, "ab") as fh:
-            fh.write(_chunk_lines(index, samples))
+            fh.write(b"".join(_chunk_lines(index, samples) for index, samples in written))
             fh.flush()
             os.fsync(fh.fileno())
-        self.done.add(index)
+        self.done.update(index for index, _ in written)
 
     def owned_chunks(self) -> list[int]:
         return [c for c in range(self.manifest.chunks) if self.manifest.owns(c)]
@@ -258,11 +270,32 @@ def _check_chunks(where: Path, manifest: Manifest, chunks: Chunks) -> None:
                             f"of a sweep of {manifest.chunks} chunks")
 
 
+NUMBERS_TOLERANCE = 1e-3  # two copies of a chunk whose numbers differ by more are different
+
+
+def draws_gap(a: Sequence[SampleRecord], b: Sequence[SampleRecord]) -> float | None:
+    """How far two copies of a chunk differ: None when any sample drew other tokens or
+    ended otherwise, else the largest difference of their log-probabilities and
+    entropies (0.0 for identical copies; the batch and the thread count move only the
+    float sums' last bits). Copies further apart than `NUMBERS_TOLERANCE` are None."""
+    if len(a) != len(b):
+        return None
+    gap = 0.0
+    for x, y in zip(a, b):
+        if (x.recipe, x.prompt_index, x.sample_index, x.token_ids, x.text, x.kept, x.ending) != \
+                (y.recipe, y.prompt_index, y.sample_index, y.token_ids, y.text, y.kept, y.ending):
+            return None
+        for u, v in ((x.logprobs, y.logprobs), (x.final_entropy, y.final_entropy)):
+            gap = max([gap, *(abs(p - q) for p, q in zip(u, v))])
+    return gap if gap <= NUMBERS_TOLERANCE else None
+
+
 def merge_folders(sources: Sequence[Path], out: Path) -> tuple[SweepFolder, list[str]]:
     """Join shard folders of one sweep into a complete folder at `out`; returns notes.
 
     Every source must hold the same sweep (fingerprint). A chunk found in two folders
-    is kept once when both copies agree (a note says so) and is an error otherwise;
+    is kept once when both copies drew the same tokens (`draws_gap`; a note says so)
+    and is an error otherwise;
     a chunk in none of them is an error naming the chunks and their shard.
     """
     if not sources:
@@ -280,11 +313,14 @@ def merge_folders(sources: Sequence[Path], out: Path) -> tuple[SweepFolder, list
     for f in folders:
         for c, samples in sorted(f.load_chunks().items()):
             if c in chunks:
-                if [s.to_json() for s in samples] != [s.to_json() for s in chunks[c]]:
+                gap = draws_gap(chunks[c], samples)
+                if gap is None:
                     raise UserError(f"chunk {c} is in both {found_in[c]} and {f.path} with "
                                     "different samples; merge only one of them")
-                notes.append(f"chunk {c} is in both {found_in[c]} and {f.path} "
-                             "(the same samples; kept once)")
+                same = ("the same samples" if gap == 0 else "the same tokens, log-probabilities "
+                        f"within {gap:.1g} (another batch or thread count)")
+                notes.append(f"chunk {c} is in both {found_in[c]} and {f.path} ({same}; kept "
+                             f"the copy in {found_in[c]})")
                 continue
             chunks[c], found_in[c] = samples, f.path
     total = first.manifest.chunks

@@ -25,6 +25,7 @@ if TYPE_CHECKING:
     from tui.sweeps.runner import SweepJob
 
 DEFAULT_ROOT = Path("sweeps")
+MAX_BATCH_ROWS = 256  # rows per forward pass that `choose_batch` picks at most
 
 
 def parse_shard(text: str | None) -> tuple[int, int] | None:
@@ -103,10 +104,20 @@ def build_job(spec: SweepSpec, prompts: tuple[Prompt, ...], lm: LoadedModel) -> 
                     chunk_rows=spec.chunk_rows, stop=spec.stop)
 
 
-def batch_rows(lm: "LoadedModel", job: "SweepJob", available: int | None = None) -> tuple[int, str]:
-    """How many rows one forward batch can hold with this model and the memory free now,
-    and the line that says so (`tui.model.sizing.rows_per_batch`: half the available
-    memory, each row's KV cache at its longest plus its logits)."""
+def choose_batch(lm: "LoadedModel", job: "SweepJob", requested: int | None = None,
+                 recorded: int | None = None, available: int | None = None) -> tuple[int, str]:
+    """Rows per forward pass for this model on this machine, and the line that says why.
+
+    The rows that fit are those whose KV caches at their longest, plus their logits, take
+    at most half the memory available now (`tui.model.sizing.rows_per_batch`).
+    `requested` (``--batch-rows``) is taken if it fits, else it is a `UserError` naming
+    both counts. `recorded` (the batch of the folder's first run, when it resumes) is
+    taken if it fits, so that the resumed run batches its chunks as an uninterrupted
+    run would. Otherwise the batch is as large as memory allows, up to the rows of one
+    prompt (a batch never spans two prompts) and `MAX_BATCH_ROWS`. The batch changes no
+    draw (see `tui.sweeps.runner`), only the last digits of the log-probabilities, so
+    it is not part of the fingerprint.
+    """
     from tui.model import sizing
 
     layers, kv_heads, head_dim, vocab = lm.cache_shape()
@@ -115,17 +126,20 @@ def batch_rows(lm: "LoadedModel", job: "SweepJob", available: int | None = None)
                                sizing.BYTES_PER_PARAMETER.get(lm.dtype, 4))
     free = sizing.available_memory() if available is None else available
     fits = sizing.rows_per_batch(per_row, free, wanted=10**6)
-    line = (f"batch: {job.chunk_rows} rows per forward pass (chunk_rows); memory allows {fits} "
-            f"({sizing.gb(per_row)} a row at {context} positions, half of {sizing.gb(free)} available)")
-    return fits, line
-
-
-def check_batch(spec: SweepSpec, lm: "LoadedModel", job: "SweepJob",
-                available: int | None = None) -> str:
-    """`batch_rows`' line; UserError naming chunk_rows when the spec asks for more rows than fit."""
-    fits, line = batch_rows(lm, job, available)
-    if job.chunk_rows > fits:
-        raise located(spec.path, "chunk_rows", f"{job.chunk_rows} rows per forward pass do not fit in "
-                                               f"memory with model {lm.name}; set chunk_rows = {fits} "
-                                               f"or less ({line.split('; ', 1)[1]})")
-    return line
+    room = (f"memory allows {fits}: {sizing.gb(per_row)} a row at {context} positions, "
+            f"half of {sizing.gb(free)} available")
+    if requested is not None:
+        if requested > fits:
+            raise UserError(f"--batch-rows: {requested} rows per forward pass do not fit in memory "
+                            f"with model {lm.name}; give {fits} or less ({room})")
+        return requested, f"batch: {requested} rows per forward pass (--batch-rows; {room})"
+    if recorded is not None and recorded <= fits:
+        return recorded, f"batch: {recorded} rows per forward pass (as the folder's first run; {room})"
+    prompt_rows = job.rows_per_prompt()
+    rows = min(fits, prompt_rows, MAX_BATCH_ROWS)
+    bound = (room if rows == fits else f"a prompt has {prompt_rows} rows; {room}"
+             if rows == prompt_rows else f"at most {MAX_BATCH_ROWS}; {room}")
+    if recorded is not None:
+        bound += (f"; the folder's first run used {recorded}, so the chunks still to run may "
+                  "differ from an uninterrupted run in the last digits of their log-probabilities")
+    return rows, f"batch: {rows} rows per forward pass ({bound})"

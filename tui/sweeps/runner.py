@@ -1,17 +1,21 @@
 """Running a sweep through the model: many (recipe, sample) rows per forward pass.
 
-For each prompt the rows are every (recipe, sample) pair, recipe by recipe; they run
-in chunks of `chunk_rows` rows, and a chunk never spans two prompts. The prompt is
-prefilled once and its cache copied into every row of a chunk. Within a chunk the
-rows decode in lockstep, as the engine's panes do: every live row holds the same
-number of tokens, so no padding is needed, and a row that has ended leaves the batch.
-Memory is bounded by one chunk: its cache rows and one (rows, V) block of logits.
+For each prompt the rows are every (recipe, sample) pair, recipe by recipe; they are
+saved in chunks of `chunk_rows` rows (the unit of output, resume and shards), and a
+chunk never spans two prompts. How many rows share a forward pass is the *batch*, a
+property of the machine, not of the sweep: `plan_batches` puts consecutive chunks of
+one prompt together up to `batch_rows` rows, and a chunk larger than that runs in
+parts. The prompt is prefilled once and its cache copied into every row of a batch.
+Within a batch the rows decode in lockstep, as the engine's panes do: every live row
+holds the same number of tokens, so no padding is needed, and a row that has ended
+leaves the batch. Memory is bounded by one batch: its cache rows and one (rows, V)
+block of logits.
 
 Draws are inverse-CDF draws (`tui.decoding.draw`). The uniform number of a row at
 step t is the t-th number of a PCG64 stream seeded by numpy's SeedSequence from
 (seed, prompt index, recipe text, sample index): a pure function of those and t, so
-the samples do not depend on the chunking, on which chunks ran before, or on the
-order in which an interrupted sweep is resumed.
+the samples do not depend on the chunking, on the batching, on which chunks ran
+before, or on the order in which an interrupted sweep is resumed.
 
 No rich, no Textual: the terminal table lives in `tui.sweeps.report`.
 """
@@ -20,7 +24,7 @@ from __future__ import annotations
 
 import hashlib
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Callable, Protocol, Sequence
+from typing import TYPE_CHECKING, Callable, Collection, Protocol, Sequence
 
 import numpy as np
 import torch
@@ -49,11 +53,14 @@ class ForwardRunner(Protocol):
 
 @dataclass(frozen=True)
 class Chunk:
-    """One unit of work and of output: rows of one prompt that share forward passes."""
+    """One unit of output, resume and sharding: rows of one prompt, saved together."""
 
     index: int  # position among all chunks of the sweep, from 0
     prompt_index: int
     rows: tuple[tuple[int, int], ...]  # (recipe index, sample index), in row order
+
+
+Batch = tuple[Chunk, ...]  # chunks of one prompt that share forward passes (`plan_batches`)
 
 
 @dataclass(frozen=True)
@@ -78,17 +85,48 @@ class SweepJob:
             if isinstance(value, bool) or not isinstance(value, int) or value < 1:
                 raise ValueError(f"sweep job: {name} must be an integer >= 1, got {value!r}")
 
-    def chunks(self) -> list[Chunk]:
-        """Every chunk of the sweep, prompt by prompt; indices count from 0.
+    def pairs(self) -> list[tuple[int, int]]:
+        """Every (recipe index, sample index) row of one prompt, recipe by recipe.
 
         A recipe that keeps one token (greedy) has one row per prompt (`samples_for`)."""
+        return [(r, s) for r, recipe in enumerate(self.recipes)
+                for s in range(samples_for(recipe, self.samples))]
+
+    def rows_per_prompt(self) -> int:
+        return len(self.pairs())
+
+    def chunks(self) -> list[Chunk]:
+        """Every chunk of the sweep, prompt by prompt; indices count from 0."""
         out: list[Chunk] = []
-        pairs = [(r, s) for r, recipe in enumerate(self.recipes)
-                 for s in range(samples_for(recipe, self.samples))]
+        pairs = self.pairs()
         for p in range(len(self.prompt_ids)):
             for start in range(0, len(pairs), self.chunk_rows):
                 out.append(Chunk(len(out), p, tuple(pairs[start:start + self.chunk_rows])))
         return out
+
+
+def plan_batches(chunks: Sequence[Chunk], batch_rows: int,
+                 done: Collection[int] = frozenset()) -> list[Batch]:
+    """`chunks` in forward batches: runs of consecutive chunks of one prompt whose rows fit
+    in `batch_rows` together; a chunk with more rows than that is a batch alone (it runs
+    in parts). The batches are planned over `chunks` whole and the chunks in `done` are
+    left out after, so a resumed run with the same `batch_rows` runs the very batches
+    of an uninterrupted one, whatever was written before."""
+    if batch_rows < 1:
+        raise ValueError(f"sweep batch: batch_rows must be >= 1, got {batch_rows}")
+    batches: list[list[Chunk]] = []
+    rows = 0
+    for chunk in chunks:
+        last = batches[-1] if batches else None
+        if (last is not None and last[0].prompt_index == chunk.prompt_index
+                and rows + len(chunk.rows) <= batch_rows):
+            last.append(chunk)
+            rows += len(chunk.rows)
+        else:
+            batches.append([chunk])
+            rows = len(chunk.rows)
+    kept = (tuple(c for c in batch if c.index not in done) for batch in batches)
+    return [batch for batch in kept if batch]
 
 
 def recipe_key(recipe: str) -> int:
@@ -109,7 +147,7 @@ def row_uniforms(seed: int, prompt_index: int, recipe: str, sample_index: int,
 
 @dataclass(eq=False)
 class _Row:
-    """One sample being written (mutable, owned by `SweepRunner.run_chunk`)."""
+    """One sample being written (mutable, owned by `SweepRunner.run_rows`)."""
 
     recipe: str
     sample_index: int
@@ -125,7 +163,7 @@ class _Row:
 
 
 class SweepRunner:
-    """Decodes a `SweepJob`'s chunks with one batched forward pass per step."""
+    """Decodes a `SweepJob`'s chunks, many rows per batched forward pass."""
 
     def __init__(self, runner: ForwardRunner, decode: DecodeFn, job: SweepJob, *,
                  eos_ids: Sequence[int], max_context: int) -> None:
@@ -154,15 +192,36 @@ class SweepRunner:
         return self._prefilled[1], self._prefilled[2]
 
     def run_chunk(self, chunk: Chunk, on_step: StepHook | None = None) -> list[SampleRecord]:
-        """Write every row of `chunk` to its end; records in the chunk's row order."""
+        """Write every row of `chunk` to its end in one batch; records in the chunk's row order."""
+        return self.run_rows(chunk.prompt_index, chunk.rows, on_step)
+
+    def run_batch(self, batch: Batch, batch_rows: int,
+                  on_step: StepHook | None = None) -> list[tuple[Chunk, list[SampleRecord]]]:
+        """Write the chunks of one `plan_batches` batch, `batch_rows` rows per forward pass at
+        most; each chunk with its records, in row order."""
+        if len({c.prompt_index for c in batch}) != 1:
+            raise ValueError("sweep batch: the chunks of a batch share one prompt")
+        rows = [pair for chunk in batch for pair in chunk.rows]
+        records: list[SampleRecord] = []
+        for start in range(0, len(rows), batch_rows):
+            records += self.run_rows(batch[0].prompt_index, rows[start:start + batch_rows], on_step)
+        out, at = [], 0
+        for chunk in batch:
+            out.append((chunk, records[at:at + len(chunk.rows)]))
+            at += len(chunk.rows)
+        return out
+
+    def run_rows(self, prompt_index: int, pairs: Sequence[tuple[int, int]],
+                 on_step: StepHook | None = None) -> list[SampleRecord]:
+        """Write the rows `pairs` ((recipe index, sample index)) of one prompt to their end,
+        decoding them in lockstep; records in the order of `pairs`."""
         job = self.job
-        prompt = job.prompt_ids[chunk.prompt_index]
+        prompt = job.prompt_ids[prompt_index]
         rows = [_Row(job.recipes[r], s, self._recipes[r].sampler(),
-                     row_uniforms(job.seed, chunk.prompt_index, job.recipes[r], s,
-                                  job.max_new_tokens),
+                     row_uniforms(job.seed, prompt_index, job.recipes[r], s, job.max_new_tokens),
                      IncrementalDecoder(self._decode, prompt))
-                for r, s in chunk.rows]
-        prompt_kv, prompt_logits = self.prompt_state(chunk.prompt_index)
+                for r, s in pairs]
+        prompt_kv, prompt_logits = self.prompt_state(prompt_index)
         live = list(range(len(rows)))  # indices into `rows`, in batch-row order
         kv = prompt_kv.select([0] * len(rows))
         logits = prompt_logits.unsqueeze(0).expand(len(rows), -1)  # (B, V)
@@ -183,7 +242,7 @@ class SweepRunner:
                 tokens = [tokens[b] for b in keep]
             kv, logits = self.runner.step(kv, tokens)
             step += 1
-        return [self._record(row, chunk.prompt_index, prompt) for row in rows]
+        return [self._record(row, prompt_index, prompt) for row in rows]
 
     def _emit(self, row: _Row, step: int, prompt: tuple[int, ...], logits: np.ndarray,
               logp: np.ndarray) -> int:
