@@ -28,7 +28,7 @@ from tui.model import conversion_cache as model_cache
 from tui.model import sources as model_sources
 from tui.model.catalogue import (DEFAULT_MODEL, CatalogueEntry, load_model, offline_status,
                                  read_catalogue, resolve)
-from tui.progress import ProgressEvent
+from tui.progress import ProgressEvent, no_progress
 from tui.settings import LOADER_ENV, settings
 
 try:
@@ -298,18 +298,88 @@ def test_a_gguf_converts_once_and_matches_transformers_gguf_loader(tiny_gguf, ti
 
     assert converting[-1].done == converting[-1].total == sum(
         int(t.n_bytes) for t in GGUFReader(str(tiny_gguf)).tensors)
-    written = [e for e in events if e.task == "writing the converted model"]
-    assert written[-1].done == written[-1].total == (folder / "model.safetensors").stat().st_size - \
-        8 - int.from_bytes((folder / "model.safetensors").read_bytes()[:8], "little")  # data bytes
     assert events[-1] == ProgressEvent("ready", 1, 1)
 
     def no_conversion(*args, **kwargs):
         raise AssertionError("the warm path converted again")
 
-    monkeypatch.setattr(model_cache, "read_gguf", no_conversion)
+    monkeypatch.setattr(model_cache, "write_conversion", no_conversion)
     warm = load_model(str(tiny_gguf))
     assert torch.equal(reference_logits(warm.model, ids), reference_logits(lm.model, ids))
     assert "convert" not in warm.timings
+
+
+def folder_tensors(folder: Path) -> dict[str, torch.Tensor]:
+    from safetensors.torch import load_file
+
+    out: dict[str, torch.Tensor] = {}
+    for path in sorted(folder.glob("*.safetensors")):
+        out.update(load_file(str(path)))
+    return out
+
+
+def test_a_streamed_conversion_writes_what_transformers_whole_load_writes(tiny_gguf, tmp_path,
+                                                                         monkeypatch):
+    from tui.model import gguf_stream
+
+    # reference: transformers 5.24.0's GGUF loader, the whole model at once (`stream=False`)
+    whole, streamed, sharded = tmp_path / "whole", tmp_path / "streamed", tmp_path / "sharded"
+    for folder in (whole, streamed, sharded):
+        folder.mkdir()
+    model_cache.write_conversion(tiny_gguf, whole, no_progress, stream=False)
+    model_cache.write_conversion(tiny_gguf, streamed, no_progress)  # llama: streamed by default
+    monkeypatch.setattr(gguf_stream, "SHARD_BYTES", 100_000)  # the tiny model in many shards
+    model_cache.write_conversion(tiny_gguf, sharded, no_progress)
+    reference = folder_tensors(whole)
+    for folder in (streamed, sharded):
+        got = folder_tensors(folder)
+        assert sorted(got) == sorted(reference) and "lm_head.weight" not in got  # tied
+        assert all(torch.equal(got[k], reference[k]) and got[k].dtype == torch.float32 for k in got)
+        for name in ("config.json", "generation_config.json", "tokenizer_config.json"):
+            assert json.loads((folder / name).read_text()) == json.loads((whole / name).read_text())
+        assert model_cache.is_ready(folder)
+    index = json.loads((sharded / model_cache.INDEX).read_text())
+    shards = sorted(p.name for p in sharded.glob("*.safetensors"))
+    assert len(shards) > 3 and sorted(set(index["weight_map"].values())) == shards
+    assert sorted(index["weight_map"]) == sorted(reference)
+    assert index["metadata"]["total_size"] == sum(t.numel() * 4 for t in reference.values())
+    # the sharded cache loads, to the same logits
+    assert not (sharded / model_cache.WEIGHTS).exists()
+    ids = [5, 6, 7, 8]
+    one = load_model(str(streamed))
+    many = load_model(str(sharded))
+    assert torch.equal(one.runner().prefill([ids])[1], many.runner().prefill([ids])[1])
+
+
+def test_a_gguf_header_gives_its_sizes_and_a_cut_file_is_refused_at_once(tiny_gguf, tmp_path):
+    from gguf import GGUFReader
+
+    from tui.model import gguf_stream, sizing
+    from tui.model.gguf_file import read_table
+
+    table = read_table(tiny_gguf)
+    tensors = GGUFReader(str(tiny_gguf)).tensors  # reference: gguf's own reader
+    assert table.architecture == "llama"
+    assert table.parameters == sum(int(t.n_elements) for t in tensors)
+    assert table.largest == max(int(t.n_elements) for t in tensors)
+    assert table.needed_bytes == max(int(t.data_offset) + int(t.n_bytes) for t in tensors) \
+        == tiny_gguf.stat().st_size and not table.cut_short
+    cut = tmp_path / "cut.gguf"
+    cut.write_bytes(tiny_gguf.read_bytes()[: table.needed_bytes // 2])
+    assert read_table(cut).cut_short
+    with pytest.raises(UserError, match=r"^model .*cut.gguf is cut short: its tensors end at "
+                                        r"\d+ KB but the file holds \d+ KB; a part of a split"):
+        load_model(str(cut))
+    assert not resolve(str(cut)).folder.exists()  # refused before any conversion
+    with pytest.raises(UserError, match="not a readable GGUF file"):
+        sizing.check_gguf("x", tmp_path / "missing.gguf", 10**12)
+    # a conversion that needs more memory than there is: refused by name, before it starts
+    need = gguf_stream.peak_bytes(table.largest, table.parameters)
+    # worked by hand: every float32 weight gathered in one shard, plus 3 copies of the largest
+    assert need == 4 * table.parameters + 3 * 4 * table.largest
+    with pytest.raises(UserError, match=r"its conversion \(llama architecture, converted tensor by "
+                                        r"tensor\) needs \d+ KB with working room but 1 KB"):
+        sizing.check_gguf("tiny", tiny_gguf, 1000)
 
 
 def test_a_folder_holding_one_gguf_resolves_to_it(tiny_gguf: Path, tmp_path: Path):
@@ -559,17 +629,11 @@ def test_importing_the_model_modules_loads_no_torch():
 def test_the_embedded_model_cache_is_bit_identical_to_transformers_gguf_load(monkeypatch):
     import gguf
 
-    captured = {}
-    real_read = model_cache.read_gguf
-
-    def capture(gguf_file, progress):
-        captured["model"], captured["tokenizer"] = real_read(gguf_file, progress)
-        return captured["model"], captured["tokenizer"]
-
-    monkeypatch.setattr(model_cache, "read_gguf", capture)
-    lm = load_model(DEFAULT_MODEL)  # converts into this test's temporary cache
-    assert "model" in captured
-    # reference: transformers 5.24.0's own GGUF loader (the model it returned, before caching)
+    lm = load_model(DEFAULT_MODEL)  # converts into this test's temporary cache (streamed)
+    assert "convert" in lm.timings
+    captured = dict(zip(("model", "tokenizer"),
+                        model_cache.read_gguf(resolve(DEFAULT_MODEL).gguf_file, no_progress)))
+    # reference: transformers 5.24.0's own GGUF loader, the Q4_1 tensors de-quantised whole
     texts = ["The harbour town of Quell", TEXT, "def add(a, b):\n    return"]
     for text in texts:
         ids = lm.encode_prompt(text, None)

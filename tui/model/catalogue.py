@@ -79,10 +79,8 @@ def load_model(
     choice, parameters = sizing.resolve_dtype(dtype, source)
     weights = sizing.check_memory(source.name, parameters, choice.dtype, sizing.available_memory())
     if source.kind == "gguf" and not model_cache.is_ready(source.folder):
+        sizing.check_gguf(source.name, source.gguf_file, sizing.available_memory())
         sizing.check_disk(source.folder.parent, parameters, f"model cache {source.folder.parent}")
-        if choice.dtype != "float32":  # transformers de-quantises into float32 first
-            sizing.check_memory(f"{source.name} (its conversion, in float32)", parameters, "float32",
-                                sizing.available_memory())
         t = time.perf_counter()
         try:
             model_cache.convert_gguf(source.gguf_file, source.folder, report)

@@ -40,6 +40,7 @@ from tui.settings import CACHE_ENV, settings
 CACHE_FORMAT = 1  # bump when the folder layout changes; older folders are rebuilt
 MARKER = "logitfork-cache.json"  # written last: a folder without it is not a cache
 WEIGHTS = "model.safetensors"
+INDEX = "model.safetensors.index.json"  # the weight map of a cache written in shards
 STALE_TEMP_SECONDS = 6 * 3600  # temp folders older than this are debris of a killed run
 DIRECT = "logitfork-direct.json"  # how transformers loaded the folder: lets warm starts skip it
 DIRECT_FORMAT = 1
@@ -86,7 +87,7 @@ def is_ready(folder: Path) -> bool:
     return (
         isinstance(marker, dict)
         and marker.get("format") == CACHE_FORMAT
-        and (folder / WEIGHTS).is_file()
+        and ((folder / WEIGHTS).is_file() or (folder / INDEX).is_file())
         and (folder / "config.json").is_file()
     )
 
@@ -158,15 +159,24 @@ def convert_gguf(gguf_file: Path, folder: Path, progress: ProgressCallback) -> N
         shutil.rmtree(temp, ignore_errors=True)
 
 
+def read_tokenizer(gguf_file: Path, progress: ProgressCallback) -> Any:
+    """The tokenizer transformers rebuilds from the GGUF's metadata."""
+    from transformers import AutoTokenizer
+
+    progress(ProgressEvent(f"converting {gguf_file.name} (once)", 0, None, "bytes",
+                           "rebuilding the tokenizer from GGUF metadata"))
+    return AutoTokenizer.from_pretrained(str(gguf_file.parent), gguf_file=gguf_file.name,
+                                         local_files_only=True, trust_remote_code=False)
+
+
 def read_gguf(gguf_file: Path, progress: ProgressCallback) -> tuple[Any, Any]:
     """(model, tokenizer) read by transformers' own GGUF loader, in float32."""
     import torch
-    from transformers import AutoModelForCausalLM, AutoTokenizer
+    from transformers import AutoModelForCausalLM
 
     common = {"gguf_file": gguf_file.name, "local_files_only": True, "trust_remote_code": False}
     task = f"converting {gguf_file.name} (once)"
-    progress(ProgressEvent(task, 0, None, "bytes", "rebuilding the tokenizer from GGUF metadata"))
-    tokenizer = AutoTokenizer.from_pretrained(str(gguf_file.parent), **common)
+    tokenizer = read_tokenizer(gguf_file, progress)
     started = time.monotonic()
 
     def tensors_done(done: int, total: int) -> None:
@@ -177,29 +187,39 @@ def read_gguf(gguf_file: Path, progress: ProgressCallback) -> tuple[Any, Any]:
     return model, tokenizer
 
 
-def write_conversion(gguf_file: Path, folder: Path, progress: ProgressCallback) -> None:
+def write_conversion(gguf_file: Path, folder: Path, progress: ProgressCallback,
+                     stream: bool | None = None) -> None:
     """Write the converted model into the (empty, temporary) `folder`; marker last.
 
-    The tokenizer's class goes into the direct-load record too, so that even the
-    first load after a conversion reads the weights directly.
+    llama and qwen2 GGUFs are streamed tensor by tensor (`tui.model.gguf_stream`, in
+    bounded memory); others, or any with ``stream=False``, go through transformers'
+    whole-model loader. The tokenizer's class goes into the direct-load record too, so
+    that even the first load after a conversion reads the weights directly.
     """
     import transformers
-    from safetensors.torch import save_file
+    from transformers import GenerationConfig
 
+    from tui.model import gguf_stream
+    from tui.model.gguf_file import read_table
+
+    if stream is None:
+        stream = read_table(gguf_file).architecture in gguf_stream.STREAMED
     with quiet_transformers():
-        model, tokenizer = read_gguf(gguf_file, progress)
-        state = unaliased_state_dict(model)
-        size = sum(t.numel() * t.element_size() for t in state.values())
-        task = "writing the converted model"
-        progress(ProgressEvent(task, 0, size, "bytes"))
-        save_file(state, str(folder / WEIGHTS), metadata={"format": "pt"})
-        del state
-        config = model.config
-        if hasattr(config, "quantization_config"):
-            del config.quantization_config  # the weights are plain float32 now
-        config.architectures = [type(model).__name__]
+        if stream:
+            tokenizer = read_tokenizer(gguf_file, progress)
+            config = gguf_stream.read_config(gguf_file)
+            config.architectures = [gguf_stream.write_weights(gguf_file, config, folder, progress,
+                                                              single=WEIGHTS, index=INDEX)]
+            generation = GenerationConfig.from_model_config(config)
+        else:
+            model, tokenizer = read_gguf(gguf_file, progress)
+            _write_whole(model, folder, progress)
+            config, generation = model.config, model.generation_config
+            if hasattr(config, "quantization_config"):
+                del config.quantization_config  # the weights are plain float32 now
+            config.architectures = [type(model).__name__]
         config.save_pretrained(folder)
-        model.generation_config.save_pretrained(folder)
+        generation.save_pretrained(folder)
         tokenizer.save_pretrained(folder)
         write_direct_record(folder, tokenizer)
     marker = {
@@ -210,6 +230,17 @@ def write_conversion(gguf_file: Path, folder: Path, progress: ProgressCallback) 
     }
     (folder / MARKER).write_text(json.dumps(marker, indent=2) + "\n", encoding="utf-8")
     _sync_to_disk(folder)
+
+
+def _write_whole(model: Any, folder: Path, progress: ProgressCallback) -> None:
+    """Save a model transformers loaded whole as one float32 safetensors file."""
+    from safetensors.torch import save_file
+
+    state = unaliased_state_dict(model)
+    size = sum(t.numel() * t.element_size() for t in state.values())
+    task = "writing the converted model"
+    progress(ProgressEvent(task, 0, size, "bytes"))
+    save_file(state, str(folder / WEIGHTS), metadata={"format": "pt"})
     progress(ProgressEvent(task, size, size, "bytes"))
 
 

@@ -26,10 +26,9 @@ from typing import Any, Callable
 
 import torch
 
-from tui.model.conversion_cache import WEIGHTS
+from tui.model.conversion_cache import INDEX, WEIGHTS
 
 SUPPORTED_MODELS = {"llama": "LlamaForCausalLM", "qwen2": "Qwen2ForCausalLM"}
-INDEX = "model.safetensors.index.json"  # the weight map of a sharded folder
 _INTS = ("hidden_size", "num_hidden_layers", "num_attention_heads", "num_key_value_heads",
          "intermediate_size", "vocab_size", "max_position_embeddings")
 

@@ -11,6 +11,9 @@ from loading. The rules:
   weight bytes / memory bandwidth, with the bandwidth assumed or set in `tui.settings`)
   on a CPU with native bfloat16 matmuls; then bfloat16 (half the bytes);
 - disk: a GGUF conversion writes float32 weights, so it needs 4 bytes per parameter free;
+- a GGUF is converted only when it is whole (its tensor table ends inside the file) and
+  its conversion fits in memory: llama and qwen2 stream tensor by tensor, others load
+  whole in float32;
 - sweeps: rows per forward batch from the memory left once the weights are in.
 """
 
@@ -67,10 +70,36 @@ def parameter_count(source: "ResolvedSource") -> int | None:
 
 
 def gguf_parameter_count(path: Path) -> int:
-    """Elements of every tensor in a GGUF file (its tensor table, memory-mapped, not read)."""
-    from gguf import GGUFReader
+    """Elements of every tensor in a GGUF file (its header's tensor table, no data read)."""
+    from tui.model.gguf_file import read_table
 
-    return sum(int(t.n_elements) for t in GGUFReader(str(path)).tensors)
+    return read_table(path).parameters
+
+
+def check_gguf(name: str, path: Path, available: int) -> None:
+    """Before a GGUF is converted: UserError when the file is cut short, or when its
+    conversion would not fit in memory (`tui.model.gguf_stream.peak_bytes` for a
+    streamed family, the whole model in float32 for the others)."""
+    from tui.model.gguf_file import read_table
+    from tui.model.gguf_stream import STREAMED, peak_bytes
+
+    try:
+        table = read_table(path)
+    except (OSError, ValueError) as exc:
+        raise UserError(f"model {name}: {path}: not a readable GGUF file ({exc})") from None
+    if table.cut_short:
+        raise UserError(f"model {name}: {path} is cut short: its tensors end at "
+                        f"{gb(table.needed_bytes)} but the file holds {gb(table.file_bytes)}; "
+                        "a part of a split download or an unfinished copy? (join split parts "
+                        "in order into one file, e.g. cat part-0000 part-0001 ... > model.gguf)")
+    if table.architecture in STREAMED:
+        need, how = peak_bytes(table.largest, table.parameters), "converted tensor by tensor"
+    else:
+        need, how = table.parameters * BYTES_PER_PARAMETER["float32"], "converted whole, in float32"
+    if need * MEMORY_MARGIN > available:
+        raise UserError(f"model {name}: its conversion ({table.architecture or 'unknown'} "
+                        f"architecture, {how}) needs {gb(need * MEMORY_MARGIN)} with working room "
+                        f"but {gb(available)} of memory is available; close other programs")
 
 
 def available_memory() -> int:
