@@ -128,3 +128,31 @@ async def test_p_chosen_under_a_recipe_that_cuts_it_reads_cut(lm):
         row = next(i for i, r in enumerate(app.screen.recipes) if r.pane_id == greedy.id)
         assert app.screen.recipes[row].chosen_prob == 0  # greedy keeps rank 1 only
         assert table.get_row_at(row)[2].plain == "cut"
+
+
+async def test_an_old_step_costs_one_forward_pass_to_inspect(lm):
+    from tui.session.engine import LOGITS_KEPT
+
+    source = live_source(lm)
+    engine = source.engine
+    for _ in range(LOGITS_KEPT + 2):  # step 0's logits are no longer kept
+        engine.step()
+    pane = engine.view().panes[0]
+    calls = []
+    real = engine.runner.logits_of
+
+    def counted(context):
+        calls.append(len(context))
+        return real(context)
+
+    engine.runner.logits_of = counted
+    from tui.app.app import make_app
+
+    app = make_app(source=source)
+    async with app.run_test(size=(120, 40)) as pilot:
+        await wait_until(pilot, lambda: app.grid.panes())
+        app.open_inspect(pane.id, 0)
+        await wait_until(pilot, lambda: isinstance(app.screen, InspectScreen)
+                         and app.screen.analysed, what="the inspect view")
+        assert app.screen.dist is not None and app.screen.dist.complete
+    assert calls == [len(engine.prompt_ids)]  # the prompt alone: step 0, recomputed once

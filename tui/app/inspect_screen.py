@@ -296,7 +296,7 @@ class InspectScreen(Screen[tuple[int, int, int] | None]):
             if logits is None or history is None:
                 self.post_message(self._without_logits(history))
                 return
-            trace = source.trace_at(pane.id, step)
+            trace = source.trace_at(pane.id, step, logits)
             dist = StepDistribution.from_trace(self.record, logits, trace)
             rows = dist.rows(TOP_N, self._text_of)
             recipes = recipe_rows(logits, history, self.record, pane, self.view.panes)

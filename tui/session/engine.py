@@ -413,13 +413,18 @@ class Engine:
 
     # ----- for the inspect view --------------------------------------------------------
 
-    def trace_at(self, pane_id: int, step: int) -> list[StageResult]:
-        """The pane's recipe stage by stage at `step`, from the sampler state it had then."""
+    def trace_at(self, pane_id: int, step: int,
+                 logits: np.ndarray | None = None) -> list[StageResult]:
+        """The pane's recipe stage by stage at `step`, from the sampler state it had then.
+
+        `logits` are that step's raw logits when the caller has them (an old step's cost
+        a forward pass in `logits_at`); else they are found the same way."""
         with self._lock:
             pane = self.pane(pane_id)
             if not 0 <= step < len(pane.samplers):
                 raise EngineError(f"pane {pane.name!r} has no step {step}")
-            logits = self.logits_at(pane_id, step)
+            if logits is None:
+                logits = self.logits_at(pane_id, step)
             _recipe, sampler = pane.samplers[step]
             return sampler.trace(logits, self.history(pane_id, step))
 

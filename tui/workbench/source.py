@@ -47,7 +47,8 @@ class SessionSource(Protocol):
 
     def history(self, pane_id: int, step: int) -> tuple[int, ...] | None: ...
 
-    def trace_at(self, pane_id: int, step: int) -> list[StageResult] | None: ...
+    def trace_at(self, pane_id: int, step: int,
+                 logits: np.ndarray | None = None) -> list[StageResult] | None: ...
 
     def transcript_lines(self, view: SessionView) -> Iterator[str] | None: ...
 
@@ -118,9 +119,11 @@ class LiveSource:
     def history(self, pane_id: int, step: int) -> tuple[int, ...] | None:
         return self.live_engine.history(pane_id, step)
 
-    def trace_at(self, pane_id: int, step: int) -> list[StageResult] | None:
-        """The pane's recipe stage by stage at the step, in the sampler state of then."""
-        return self.live_engine.trace_at(pane_id, step)
+    def trace_at(self, pane_id: int, step: int,
+                 logits: np.ndarray | None = None) -> list[StageResult] | None:
+        """The pane's recipe stage by stage at the step, in the sampler state of then
+        (on `logits` when the caller has that step's already, else `logits_at`'s)."""
+        return self.live_engine.trace_at(pane_id, step, logits)
 
     def token_text(self, token_id: int) -> str:
         """One token decoded on its own (the inspect view's search over every token)."""
@@ -180,7 +183,8 @@ class StaticSource:
             return None
         return self.prompt_ids + tuple(r.token_id for r in pane.records[:step])
 
-    def trace_at(self, pane_id: int, step: int) -> list[StageResult] | None:
+    def trace_at(self, pane_id: int, step: int,
+                 logits: np.ndarray | None = None) -> list[StageResult] | None:
         return None
 
     def transcript_lines(self, view: SessionView) -> Iterator[str] | None:
