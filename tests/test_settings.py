@@ -58,6 +58,17 @@ def test_prepare_process_sets_only_what_is_unset():
     assert environ == {**PROCESS_DEFAULTS, "OMP_WAIT_POLICY": "ACTIVE"}
 
 
+def test_a_thread_count_reaches_torch_without_loading_it_early():
+    # reference: torch.get_num_threads() honours OMP_NUM_THREADS read when torch loads
+    # (PyTorch docs, "CPU threading and TorchScript inference")
+    env = {**os.environ, "PYTHONPATH": str(ROOT), "LOGITFORK_THREADS": "1"}
+    code = ("import sys\nfrom tui.settings import prepare_process\nprepare_process()\n"
+            "early = 'torch' in sys.modules\nimport torch\nprint(early, torch.get_num_threads())\n")
+    out = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True,
+                         check=True)
+    assert out.stdout.split() == ["False", "1"]
+
+
 def test_importing_and_loading_a_model_set_nothing_in_the_environment(tiny_model_dir):
     # A fresh process with a clean environment: importing the package and loading a
     # model must leave os.environ as it was (the knobs are set by entry points only).

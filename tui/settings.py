@@ -18,7 +18,8 @@ Set (only by `prepare_process()`, which the entry points call once; never at imp
   set before huggingface_hub is imported, which reads it once;
 - ``OMP_WAIT_POLICY=PASSIVE`` unless set: OpenMP threads sleep while they wait instead of
   spinning next to the app's own thread (read once, when torch loads);
-- torch's thread count, when ``LOGITFORK_THREADS`` is set.
+- ``OMP_NUM_THREADS``, torch's intra-op thread count, when ``LOGITFORK_THREADS`` is set
+  (so that a command that never needs torch does not load it to set its threads).
 
 Named here, applied by their owners: glibc's malloc thresholds (`tui.decoding.allocator`,
 once per process) and matplotlib's backend (`MATPLOTLIB_BACKEND`, chosen per figure by
@@ -28,6 +29,7 @@ once per process) and matplotlib's backend (`MATPLOTLIB_BACKEND`, chosen per fig
 from __future__ import annotations
 
 import os
+import sys
 from dataclasses import dataclass
 from functools import cache
 from pathlib import Path
@@ -99,9 +101,10 @@ def prepare_process(environ: "os._Environ[str] | dict[str, str]" = os.environ) -
         environ.setdefault(name, value)
     threads = read_settings(environ).threads
     if threads is not None:
-        import torch
-
-        torch.set_num_threads(threads)
+        environ["OMP_NUM_THREADS"] = str(threads)  # torch reads it once, when it loads
+        torch = sys.modules.get("torch")
+        if torch is not None:  # already loaded (an embedding program): set it directly
+            torch.set_num_threads(threads)
 
 
 def _choice(environ: Mapping[str, str], name: str, allowed: tuple[str, ...]) -> str:
