@@ -204,10 +204,13 @@ LIBRARY_ORDER: dict[type[Stage], tuple[str, str]] = {
 }
 # Stages that change logits by the history, so that they can move the argmax before greedy.
 _PENALTIES = (RepetitionPenalty, PresencePenalty, FrequencyPenalty, NoRepeatNGram)
-# Values that switch a field off, so that a model's own defaults do not leak in.
-_NEUTRAL = {"temperature": 1.0, "top_k": 0, "top_p": 1.0, "min_p": 0.0, "typical_p": 1.0,
-            "epsilon_cutoff": 0.0, "eta_cutoff": 0.0}
-_NEUTRAL_PENALTIES = {"repetition_penalty": 1.0, "no_repeat_ngram_size": 0}
+# The fields the stages map onto, at the values that switch them off (GENERATE_NEUTRAL's),
+# so that a model's own defaults do not leak into an exported config. min_p is 0.0 here
+# (keeps every token, and reads as a number in the file) where generate() is told None.
+_NEUTRAL = {field: GENERATE_NEUTRAL[field] for field, _ in LIBRARY_ORDER.values()} | {"min_p": 0.0}
+_PENALTY_FIELDS = frozenset(LIBRARY_ORDER[t][0] for t in _PENALTIES if t in LIBRARY_ORDER)
+_NEUTRAL_PENALTIES = {f: v for f, v in _NEUTRAL.items() if f in _PENALTY_FIELDS}
+_NEUTRAL_SAMPLING = {f: v for f, v in _NEUTRAL.items() if f not in _PENALTY_FIELDS}
 # Pairs of stages whose order never changes the distribution, so transformers' fixed
 # order is harmless for them; every other pair of different kinds can come out
 # differently when swapped (tests/test_export_order.py holds a witness for each).
@@ -232,8 +235,7 @@ def changes_nothing(stage: Stage) -> bool:
     if mapped is None:
         return False
     field, attribute = mapped
-    neutral = {**_NEUTRAL, **_NEUTRAL_PENALTIES}[field]
-    return getattr(stage, attribute) == neutral
+    return getattr(stage, attribute) == _NEUTRAL[field]
 
 
 def order_matters(first: Stage, second: Stage) -> bool:
@@ -255,7 +257,7 @@ def to_generation_config(recipe: Recipe) -> GenerationConfig:
         stages = [s for s in before if isinstance(s, _PENALTIES)]
     fields: dict[str, Any] = {"do_sample": greedy_at is None, **_NEUTRAL_PENALTIES}
     if greedy_at is None:
-        fields.update(_NEUTRAL)
+        fields.update(_NEUTRAL_SAMPLING)
     placed: list[Stage] = []
     for stage in stages:
         mapped = LIBRARY_ORDER.get(type(stage))
