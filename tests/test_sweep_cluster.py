@@ -229,6 +229,18 @@ def test_a_worker_that_cannot_load_the_model_is_one_line(base, tiny_model_dir, c
     assert not out.exists()
 
 
+def test_a_batch_too_big_for_a_worker_is_one_line_naming_what_fits(base, sweep, cluster):
+    out = base / "too-wide"
+    rc, _, err = run("sweep", str(sweep), "--out", str(out), "--ray", cluster, "--workers", "1",
+                     "--batch-rows", str(10**9))
+    assert rc == 2
+    line = one_error_line(err)
+    assert line.startswith("error: --ray: the worker on ") and "(pid " in line
+    assert f": --batch-rows: {10**9} rows per forward pass do not fit in memory" in line
+    assert "or less (memory allows" in line and "must resolve" not in line
+    assert not out.exists()
+
+
 def test_more_workers_than_the_cluster_has_cpus_is_refused(base, sweep, cluster):
     rc, _, err = run("sweep", str(sweep), "--out", str(base / "too-many"), "--ray", cluster,
                      "--workers", "3")

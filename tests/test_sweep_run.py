@@ -260,6 +260,19 @@ def test_a_bad_sweep_file_is_one_line_and_exit_2(tmp_path, tiny_model_dir, capsy
     assert err.count("\n") == 1 and "Traceback" not in err
 
 
+def test_a_batch_that_does_not_fit_is_one_line_and_nothing_is_written(tmp_path, tiny_model_dir,
+                                                                      capsys):
+    sweep = write_sweep(tmp_path / "s.toml", tiny_model_dir)
+    out = tmp_path / "out"
+    assert cli(["sweep", str(sweep), "--out", str(out), "--batch-rows", str(10**9)]) == 2
+    lines = capsys.readouterr().err.splitlines()  # the model's line, then the error
+    assert lines[-1].startswith(f"error: --batch-rows: {10**9} rows per forward pass do not fit "
+                                "in memory with model ") and "or less (memory allows " in lines[-1]
+    assert len(lines) == 2 and lines[0].startswith("model ") and not out.exists()
+    assert cli(["sweep", str(sweep), "--out", str(out), "--batch-rows", "0"]) == 2
+    assert capsys.readouterr().err == "error: --batch-rows: must be at least 1, got 0\n"
+
+
 def test_a_bad_sweep_file_is_refused_before_torch_loads(tmp_path, tiny_model_dir):
     bad = write_sweep(tmp_path / "bad.toml", tiny_model_dir, max_new_tokens=0)
     code = ("import sys\nfrom tui.cli import main\n"

@@ -3,16 +3,18 @@
 transformers' GGUF loader de-quantises every tensor into one state dict and then
 builds the model, so a conversion through it needs the whole model in float32 at
 once: 30 GB for a 7B model, more than many machines that run one in bfloat16 have.
-This module does the same work one tensor at a time: it takes the config and the
-GGUF-to-transformers name map from transformers itself (`AutoConfig` on the GGUF,
-`get_gguf_hf_weights_map` on a model built on the meta device, the architecture's
-`TensorProcessor`), then de-quantises each tensor with the
-`gguf` package, applies the processor (the q/k row permutation for llama), and
-writes float32 safetensors shards of at most `SHARD_BYTES`. That is the loop of
+This module does the same work one tensor at a time: it takes the config from
+transformers (`AutoConfig` on the GGUF), the name table from gguf and transformers'
+way of asking it (`name_map`, on a model built on the meta device) and the
+architecture's `TensorProcessor`; then it de-quantises each tensor with the `gguf`
+package, applies the processor (the q/k row permutation for llama), and writes
+float32 safetensors shards of at most `SHARD_BYTES`. That is the loop of
 `transformers.modeling_gguf_pytorch_utils.load_gguf_checkpoint` (5.24), run as a
-stream; `tests/test_models.py` holds its output to the whole-model path's, bit for bit.
+stream; `tests/test_models.py` holds its output to the whole-model path's, bit for
+bit, on a float32 GGUF and on the embedded Q4_1 one.
 
-Peak memory: one shard plus a few copies of the largest tensor (`peak_bytes`).
+Peak memory: one shard plus a few copies of the largest tensor (`peak_bytes`), and the
+pages of the memory-mapped GGUF file, which the system can take back at any time.
 Only the families on the fast path are streamed (`STREAMED`); any other
 architecture goes through transformers' loader as before.
 """

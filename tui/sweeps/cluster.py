@@ -12,7 +12,7 @@ idle worker and writes every chunk that comes back, so the folder, its resume,
 Faults: a worker process that dies (killed, out of memory) costs only the batch it
 held: Ray restarts the actor (`WORKER_RESTARTS` times, reloading the model) and the
 batch goes back to the front of the queue, for whichever worker is free first. A
-batch lost `CHUNK_ATTEMPTS` times, every worker gone, or a worker raising an error
+batch lost `BATCH_ATTEMPTS` times, every worker gone, or a worker raising an error
 ends the run with a `UserError`; the chunks already written stay for a resume.
 
 Ray is imported here only, inside functions: importing this module loads neither Ray
@@ -40,7 +40,7 @@ if TYPE_CHECKING:
 LOCAL = "local"
 RAY_PIN = "ray[client]==2.60.0"
 WORKER_RESTARTS = 3  # times Ray restarts one worker's process after it dies
-CHUNK_ATTEMPTS = 3  # a batch lost this many times (its worker died each time) ends the run
+BATCH_ATTEMPTS = 3  # a batch lost this many times (its worker died each time) ends the run
 READY_SECONDS = 600.0  # a worker that has not loaded its model by then ends the run
 POLL_SECONDS = 0.5  # the driver wakes this often while it waits (Ctrl-C stays prompt)
 RESTART_POLL_SECONDS = 0.5  # how often a restarting worker is asked whether it is back
@@ -116,7 +116,7 @@ class ChunkWorker:
         at most `batch_rows` rows; their records, chunk by chunk."""
         if self._info is None:
             raise RuntimeError(f"the model did not load: {self._error}")
-        batch = [self._chunks[i] for i in indices]
+        batch = tuple(self._chunks[i] for i in indices)
         return [records for _, records in self._runner.run_batch(batch, batch_rows)]
 
 
@@ -259,6 +259,8 @@ class WorkerPool:
                 raise UserError(f"--ray: a worker could not start ({first_line(exc)}); every "
                                 "worker needs logitfork installed, the same version as here"
                                 ) from None
+            if isinstance(answer, str) and ": --batch-rows: " in answer:
+                raise UserError(f"--ray: the worker on {answer}")
             if isinstance(answer, str):
                 raise UserError(f"--ray: the worker on {answer}; the model {model!r} must resolve "
                                 "on every worker (a catalogue name with the model in that "
@@ -319,8 +321,8 @@ class WorkerPool:
                     results = ray.get(ref)
                 except RayActorError as exc:
                     lost[batch[0].index] += 1
-                    if lost[batch[0].index] >= CHUNK_ATTEMPTS:
-                        raise UserError(f"--ray: {what} was lost {CHUNK_ATTEMPTS} times (its "
+                    if lost[batch[0].index] >= BATCH_ATTEMPTS:
+                        raise UserError(f"--ray: {what} was lost {BATCH_ATTEMPTS} times (its "
                                         f"worker died each time; last on {where}); the chunks "
                                         "written stay for a resume") from None
                     queue.appendleft(batch)

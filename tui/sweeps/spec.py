@@ -10,7 +10,7 @@ A sweep is a TOML file of our own format (documented in the README):
     samples = 8                       # per prompt and recipe, 1..100000 (greedy: 1, see samples_for)
     max_new_tokens = 60               # 1..4096
     seed = 11                         # optional, default 0
-    chunk_rows = 32                   # optional, rows per forward pass, 1..256
+    chunk_rows = 32                   # optional, rows saved together (resume, shards), 1..256
     stop = ["\\n\\n"]                 # optional stop strings
     [grid]                            # every combination; stages in written order
     temperature = [0.5, 0.7, 1.0]
@@ -47,7 +47,7 @@ from tui.model.catalogue import DEFAULT_MODEL
 from tui.session.scenario import ROLES
 
 MAX_NEW_TOKENS = 4096
-DEFAULT_CHUNK_ROWS = 32  # rows per forward pass unless the file says otherwise
+DEFAULT_CHUNK_ROWS = 32  # rows per saved chunk unless the file says otherwise
 MAX_CHUNK_ROWS = 256
 MAX_RECIPES = 256
 MAX_SAMPLES = 100_000  # per prompt and recipe: far past any useful sweep, short of a hang
