@@ -12,7 +12,6 @@ Run as a script to build one: ``python tests/tiny_model.py OUT_DIR [--gguf FILE]
 
 from __future__ import annotations
 
-import json
 import sys
 from pathlib import Path
 from typing import Any
@@ -135,75 +134,13 @@ def build_tiny_qwen2_model(path: str | Path, max_shard_size: str | None = None) 
     return path
 
 
-def _llama_cpp_permute(weight, n_head: int):
-    """Reorder q/k rows the way llama.cpp's converter does (rotary halves interleaved).
-
-    reference: llama.cpp convert_hf_to_gguf.py LlamaModel.permute; transformers'
-    LlamaTensorProcessor._reverse_permute_weights undoes it.
-    """
-    rows = weight.shape[0]
-    return weight.reshape(n_head, 2, rows // n_head // 2, *weight.shape[1:]).swapaxes(1, 2).reshape(weight.shape)
-
-
 def build_tiny_gguf(model_dir: str | Path, path: str | Path) -> Path:
-    """Write the tiny llama in `model_dir` as an F32 GGUF file at `path`; return it.
+    """Write the tiny llama in `model_dir` as an F32 GGUF file at `path`; return it
+    (`tui.bench.gguf_writer`, the way llama.cpp lays one out)."""
+    from tui.bench.gguf_writer import write_llama_gguf
 
-    Tensor names come from gguf's own name map; q and k are permuted as llama.cpp does;
-    the tokenizer goes in as a "gpt2" (byte-level BPE) vocabulary with its merges.
-    """
-    import gguf
-    import numpy as np
-    from safetensors.numpy import load_file
-
-    model_dir, path = Path(model_dir), Path(path)
-    config = json.loads((model_dir / "config.json").read_text())
-    tok = json.loads((model_dir / "tokenizer.json").read_text())
-    tensors = load_file(str(model_dir / "model.safetensors"))
-
-    writer = gguf.GGUFWriter(str(path), arch="llama")
-    writer.add_name("tiny-llama")
-    writer.add_context_length(config["max_position_embeddings"])
-    writer.add_embedding_length(config["hidden_size"])
-    writer.add_block_count(config["num_hidden_layers"])
-    writer.add_feed_forward_length(config["intermediate_size"])
-    writer.add_head_count(config["num_attention_heads"])
-    writer.add_head_count_kv(config["num_key_value_heads"])
-    writer.add_layer_norm_rms_eps(config["rms_norm_eps"])
-    writer.add_rope_freq_base(10000.0)
-    writer.add_file_type(gguf.LlamaFileType.ALL_F32)
-
-    vocab: dict[str, int] = tok["model"]["vocab"]
-    for added in tok["added_tokens"]:
-        vocab[added["content"]] = added["id"]
-    tokens = [t for t, _ in sorted(vocab.items(), key=lambda item: item[1])]
-    special = {a["content"] for a in tok["added_tokens"] if a["special"]}
-    merges = [m if isinstance(m, str) else " ".join(m) for m in tok["model"]["merges"]]
-    writer.add_tokenizer_model("gpt2")
-    writer.add_tokenizer_pre("default")
-    writer.add_token_list(tokens)
-    writer.add_token_types([gguf.TokenType.CONTROL if t in special else gguf.TokenType.NORMAL for t in tokens])
-    writer.add_token_merges(merges)
-    writer.add_eos_token_id(config["eos_token_id"])
-    writer.add_pad_token_id(config["eos_token_id"])
-    writer.add_chat_template(CHAT_TEMPLATE)
-
-    name_map = gguf.get_tensor_name_map(gguf.MODEL_ARCH.LLAMA, config["num_hidden_layers"])
-    n_head, n_kv = config["num_attention_heads"], config["num_key_value_heads"]
-    for hf_name, array in tensors.items():
-        if hf_name == "lm_head.weight":
-            continue  # tied: a GGUF without output.weight means tie_word_embeddings
-        array = array.astype(np.float32)
-        if hf_name.endswith("q_proj.weight"):
-            array = _llama_cpp_permute(array, n_head)
-        elif hf_name.endswith("k_proj.weight"):
-            array = _llama_cpp_permute(array, n_kv)
-        writer.add_tensor(name_map.get_name(hf_name, try_suffixes=(".weight", ".bias")), array)
-
-    writer.write_header_to_file()
-    writer.write_kv_data_to_file()
-    writer.write_tensors_to_file()
-    writer.close()
-    return path
+    return write_llama_gguf(Path(model_dir), Path(path), chat_template=CHAT_TEMPLATE,
+                            name="tiny-llama")
 
 
 # ------------------------------------------------- bare models for the forward-path tests

@@ -12,7 +12,9 @@ resident memory after the steps, and which forward path ran. The floor: a decode
 reads every weight once, so it takes at least (weight bytes) / (memory bandwidth); the
 bandwidth is measured here by summing a 1 GB float32 tensor (best of 5), a read-only
 figure, so the floor is optimistic. Targets (issue: own models): 4 panes at most 1.3x
-1 pane; one pane within 1.5x the bfloat16 floor; RSS within 1.3x the weights.
+1 pane; one pane within 1.5x the bfloat16 floor; RSS within 1.3x the weights. The 1B
+shape is also written as an F16 GGUF and converted both ways (`conversion_rows`), for
+the peak memory of a streamed conversion against transformers' whole-model load.
 """
 
 from __future__ import annotations
@@ -192,9 +194,68 @@ def own_model_rows(quick: bool, keep: bool = True) -> list[Row]:
                     f"RSS {got['rss'] / 1e9:.2f} GB, weights {weights / 1e9:.2f} GB", "<= 1.3x",
                     verdict(got["rss"] / weights <= 1.3)),
             ]
+        if name == "llama-1b":
+            rows += conversion_rows(folder, root, tokenizer_folder)
         if not keep:
             shutil.rmtree(folder, ignore_errors=True)
+            (root / f"{name}.f16.gguf").unlink(missing_ok=True)
     return rows
+
+
+def conversion_rows(folder: Path, root: Path, tokenizer_folder: Path) -> list[Row]:
+    """The 1B shape written as an F16 GGUF, converted streamed and whole in fresh processes:
+    peak resident memory and time of each (`tui.model.gguf_stream` against transformers'
+    whole-model load). Peak RSS counts the memory-mapped GGUF's pages in both."""
+    from tui.bench.gguf_writer import write_llama_gguf
+    from tui.model.gguf_file import read_table
+    from tui.model.gguf_stream import peak_bytes
+
+    gguf_file = root / f"{folder.name}.f16.gguf"
+    if not gguf_file.is_file():
+        jinja = tokenizer_folder / "chat_template.jinja"
+        template = (jinja.read_text(encoding="utf-8") if jinja.is_file() else json.loads(
+            (tokenizer_folder / "tokenizer_config.json").read_text())["chat_template"])
+        temp = write_llama_gguf(folder, gguf_file.with_suffix(".tmp"), chat_template=template,
+                                half=True, name=f"bench-{folder.name}")
+        temp.rename(gguf_file)
+    table = read_table(gguf_file)
+    got = {mode: _run_convert(gguf_file, mode) for mode in ("stream", "whole")}
+    if any("error" in g for g in got.values()):
+        return [Row("own models", f"{folder.name} F16 GGUF conversion", "not run",
+                    "; ".join(g.get("error", "") for g in got.values()))]
+    s, w = got["stream"], got["whole"]
+    return [
+        Row("own models", f"{folder.name} F16 GGUF conversion: peak RSS streamed / whole",
+            f"{s['peak_rss'] / 1e9:.2f} / {w['peak_rss'] / 1e9:.2f} GB",
+            f"{w['peak_rss'] / s['peak_rss']:.2f}x less streamed; file {table.file_bytes / 1e9:.2f} GB "
+            f"(its mapped pages count in both); the check's estimate {peak_bytes(table.largest, table.parameters) / 1e9:.2f} GB"),
+        Row("own models", f"{folder.name} F16 GGUF conversion: time streamed / whole",
+            f"{s['seconds']:.0f} / {w['seconds']:.0f} s", "the same bytes written (a test holds them equal)"),
+    ]
+
+
+def _run_convert(gguf_file: Path, mode: str) -> dict[str, Any]:
+    cmd = [sys.executable, "-m", "tui.bench.own_models", "--convert", str(gguf_file), mode]
+    done = subprocess.run(cmd, capture_output=True, text=True)
+    if done.returncode != 0:
+        lines = (done.stderr or done.stdout).strip().splitlines()
+        return {"error": lines[-1] if lines else f"exit {done.returncode}"}
+    return json.loads(done.stdout.strip().splitlines()[-1])
+
+
+def convert_one(gguf_file: Path, mode: str) -> dict[str, Any]:
+    """In a fresh process: convert `gguf_file` into a temporary folder; time and peak RSS."""
+    import resource
+    import tempfile
+
+    from tui.model.conversion_cache import write_conversion
+    from tui.progress import no_progress
+
+    with tempfile.TemporaryDirectory(dir=gguf_file.parent) as out:
+        started = time.perf_counter()
+        write_conversion(gguf_file, Path(out), no_progress, stream=mode == "stream")
+        seconds = time.perf_counter() - started
+    return {"seconds": seconds, "peak_rss": resource.getrusage(resource.RUSAGE_SELF).ru_maxrss * 1024}
 
 
 def _run_child(folder: Path, dtype: str, steps: int) -> dict[str, Any]:
@@ -211,10 +272,14 @@ def main(argv: Sequence[str] | None = None) -> int:
     p.add_argument("--quick", action="store_true", help="3 steps per pane count instead of 10")
     p.add_argument("--drop", action="store_true", help="delete the built folders afterwards")
     p.add_argument("--one", nargs=3, metavar=("FOLDER", "DTYPE", "STEPS"), help=argparse.SUPPRESS)
+    p.add_argument("--convert", nargs=2, metavar=("GGUF", "MODE"), help=argparse.SUPPRESS)
     args = p.parse_args(argv)
     from tui.settings import prepare_process
 
     prepare_process()
+    if args.convert:
+        print(json.dumps(convert_one(Path(args.convert[0]), args.convert[1])))
+        return 0
     if args.one:
         folder, dtype, steps = args.one
         print(json.dumps(measure_one(Path(folder), dtype, int(steps))))
