@@ -115,6 +115,35 @@ def test_the_markdown_report_has_the_same_facts(tmp_path, monkeypatch):
     assert "| 2 | `!` | 32 | 2 | 0.2500 | 0.2500 | 2 | 0.500 | 0.250 | length |" in md
 
 
+def test_both_reports_name_the_prompts_a_session_ran_before_an_edit(tmp_path, monkeypatch):
+    from dataclasses import replace
+
+    from transcript_fakes import sample_records
+
+    from tui.files import write_atomic
+    from tui.session.scenario import EarlierSetup
+    from tui.transcripts.format import transcript_lines
+
+    earlier = (EarlierSetup(7, "Once upon a tide", (), 40, ("END",)),
+               EarlierSetup(0, None, (("user", "Name the ferry."),), 12, ()))
+    head = replace(sample_header(), prompt_edits=earlier)
+    path = write_atomic(tmp_path / "e.jsonl", transcript_lines(head, sample_records()))
+    lines = ["1. ran 7 step(s) with the prompt 'Once upon a tide', at most 40 new tokens, stop "
+             "strings 'END'; then the prompt was edited and the session restarted",
+             "2. ran 0 step(s) with the prompt '[user] Name the ferry.', at most 12 new tokens, "
+             "stop strings none; then the prompt was edited and the session restarted"]
+    for suffix in (".md", ".html"):
+        out = tmp_path / f"e{suffix}"
+        assert run_cli(["report", str(path), "--out", str(out)], monkeypatch) == 0
+        text = out.read_text()
+        for line in lines:
+            assert (line if suffix == ".md" else line.replace("'", "&#x27;")) in text, (suffix, line)
+    plain = tmp_path / "plain.md"
+    assert run_cli(["report", str(write_sample(tmp_path / "p.jsonl")), "--out", str(plain)],
+                   monkeypatch) == 0
+    assert "Earlier prompts" not in plain.read_text()
+
+
 def test_report_defaults_and_bad_suffix(tmp_path, monkeypatch, capsys):
     path = write_sample(tmp_path / "s.jsonl")
     assert run_cli(["report", str(path)], monkeypatch) == 0

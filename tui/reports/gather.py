@@ -166,3 +166,18 @@ def origin_text(pane: PaneHeader, report: Report) -> str:
 
 def recipe_changes(pane: PaneHeader) -> list[str]:
     return [f"from step {s}: {r}" for s, r in pane.recipe_log]
+
+
+def prompt_edit_lines(header: TranscriptHeader) -> list[str]:
+    """One line per earlier setup the session ran with before the prompt was edited,
+    oldest first: how far it got, its prompt (shortened) and its length settings."""
+    out = []
+    for i, setup in enumerate(header.prompt_edits, start=1):
+        prompt = setup.prompt if setup.prompt is not None else " ".join(
+            f"[{r}] {c}" for r, c in setup.messages)
+        shown = prompt if len(prompt) <= 120 else prompt[:119] + "…"
+        stop = ", ".join(repr(x) for x in setup.stop) or "none"
+        out.append(f"{i}. ran {setup.steps} step(s) with the prompt {visible(shown)!r}, at most "
+                   f"{setup.max_new_tokens} new tokens, stop strings {stop}; then the prompt "
+                   "was edited and the session restarted")
+    return out

@@ -13,7 +13,8 @@ from html import escape
 from typing import Iterator
 
 from tui import token_style as ts
-from tui.reports.gather import Report, Row, fmt, origin_text, recipe_changes, token_cell, visible
+from tui.reports.gather import (Report, Row, fmt, origin_text, prompt_edit_lines, recipe_changes,
+                                token_cell, visible)
 
 _PAGE_CSS = """
 body { font-family: system-ui, -apple-system, "Segoe UI", sans-serif; margin: 2rem auto;
@@ -133,6 +134,9 @@ def _facts(report: Report) -> Iterator[str]:
         ("stop strings", ", ".join(f"<code>{escape(repr(s))}</code>" for s in h.stop) or "none"),
         ("versions", ", ".join(f"{escape(k)} {escape(v)}" for k, v in sorted(h.versions.items()))),
     ]
+    edits = prompt_edit_lines(h)
+    if edits:  # after the prompt: the setups that ran before it was edited
+        rows.insert(4, ("earlier prompts", "<br>".join(escape(line) for line in edits)))
     yield '<dl class="facts">' + "".join(f"<dt>{k}</dt><dd>{v}</dd>" for k, v in rows) + "</dl>"
 
 

@@ -10,7 +10,8 @@ import re
 from typing import Iterator
 
 from tui import token_style as ts
-from tui.reports.gather import Report, fmt, origin_text, recipe_changes, token_cell, visible
+from tui.reports.gather import (Report, fmt, origin_text, prompt_edit_lines, recipe_changes,
+                                token_cell, visible)
 
 
 def _cell(text: str) -> str:
@@ -62,6 +63,12 @@ def render_md(report: Report) -> Iterator[str]:
     else:
         yield from _block("\n".join(f"[{r}] {c}" for r, c in h.messages or ()))
     yield ""
+    edits = prompt_edit_lines(h)
+    if edits:
+        yield "Earlier prompts (the steps they ran were dropped when the prompt was edited):"
+        yield ""
+        yield from (_cell(line) for line in edits)
+        yield ""
     yield "## Panes"
     yield ""
     yield ("How tokens are coloured in the app and the HTML report: "
