@@ -144,6 +144,29 @@ def test_both_reports_name_the_prompts_a_session_ran_before_an_edit(tmp_path, mo
     assert "Earlier prompts" not in plain.read_text()
 
 
+def test_both_reports_draw_the_apps_parting_marks(tmp_path, monkeypatch):
+    from tui.session.parting import PART, TextMark, compared_with, text_marks
+    from tui.workbench.replay_source import session_view
+
+    path = write_sample(tmp_path / "s.jsonl")
+    stored = StoredSession.open(path)
+    report = gather(stored)
+    # reference: the marks the app draws on the same session, replayed
+    view = session_view(stored.header, {p.id: list(stored.pane_records(p.id)) for p in stored.panes})
+    for pane, live in zip(report.panes, view.panes, strict=True):
+        assert report.marks(pane) == text_marks(live, compared_with(live, view.panes))
+    # worked by hand: "warm" chose token 30 at step 0 where "greedy" chose 20
+    assert report.marks(report.panes[1]) == (TextMark(0, PART, "leaves greedy here"),)
+    assert report.marks(report.panes[0]) == ()
+    md, html = tmp_path / "r.md", tmp_path / "r.html"
+    for out in (md, html):
+        assert run_cli(["report", str(path), "--out", str(out)], monkeypatch) == 0
+    assert "Marks: \u2260 step 0: leaves greedy here." in md.read_text()
+    assert md.read_text().count("Marks:") == 1
+    page = html.read_text()
+    assert '<span class="part" title="leaves greedy here">\u2260</span><span class="mark">' in page
+
+
 def test_report_defaults_and_bad_suffix(tmp_path, monkeypatch, capsys):
     path = write_sample(tmp_path / "s.jsonl")
     assert run_cli(["report", str(path)], monkeypatch) == 0

@@ -13,7 +13,9 @@ import math
 from dataclasses import dataclass
 from pathlib import Path
 
+from tui import token_style as ts
 from tui.numbers import fixed
+from tui.session.parting import EDIT, FORK, PART, TextMark, compared_with, text_marks
 from tui.session.record import mean_logprob, perplexity
 from tui.transcripts.headers import PaneHeader, TranscriptHeader
 from tui.transcripts.reader import StoredSession
@@ -51,6 +53,31 @@ class PaneReport:
     def text(self) -> str:
         return "".join(r.text for r in self.rows)
 
+    # What `tui.session.parting` reads of a pane (`Compared`), as of a live one.
+    @property
+    def id(self) -> int:
+        return self.header.id
+
+    @property
+    def name(self) -> str:
+        return self.header.name
+
+    @property
+    def recipe(self) -> str:
+        return self.header.recipe
+
+    @property
+    def origin(self) -> tuple[int, int] | None:
+        return self.header.origin
+
+    @property
+    def recipe_log(self) -> tuple[tuple[int, str], ...]:
+        return self.header.recipe_log
+
+    @property
+    def records(self) -> tuple[Row, ...]:
+        return self.rows
+
     @property
     def mean_logprob(self) -> float:
         return mean_logprob(self._logprobs())
@@ -81,6 +108,10 @@ class Report:
     def at(self, step: int) -> list[Row | None]:
         """Each pane's row at a step (None where it had stopped)."""
         return [p.rows[step] if step < len(p.rows) else None for p in self.panes]
+
+    def marks(self, pane: PaneReport) -> tuple[TextMark, ...]:
+        """The marks of a pane's text, as the app draws them (`tui.session.parting`)."""
+        return text_marks(pane, compared_with(pane, self.panes))
 
 
 def gather(session: StoredSession) -> Report:
@@ -181,3 +212,11 @@ def prompt_edit_lines(header: TranscriptHeader) -> list[str]:
                    f"{setup.max_new_tokens} new tokens, stop strings {stop}; then the prompt "
                    "was edited and the session restarted")
     return out
+
+
+MARK_SIGNS = {PART: ts.PART_MARK, FORK: ts.FORK_MARK, EDIT: ts.EDIT_MARK}
+
+
+def mark_lines(marks: tuple[TextMark, ...]) -> list[str]:
+    """``≠ step 4: leaves greedy here`` for each mark, in step order."""
+    return [f"{MARK_SIGNS[m.kind]} step {m.step}: {m.note}" for m in marks]

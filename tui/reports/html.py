@@ -13,8 +13,9 @@ from html import escape
 from typing import Iterator
 
 from tui import token_style as ts
-from tui.reports.gather import (Report, Row, fmt, origin_text, prompt_edit_lines, recipe_changes,
-                                token_cell, visible)
+from tui.reports.gather import (MARK_SIGNS, Report, Row, fmt, mark_lines, origin_text,
+                                prompt_edit_lines, recipe_changes, token_cell, visible)
+from tui.session.parting import TextMark
 
 _PAGE_CSS = """
 body { font-family: system-ui, -apple-system, "Segoe UI", sans-serif; margin: 2rem auto;
@@ -59,6 +60,8 @@ def _token_css() -> str:
         c = ts.token_colours(1, 1.0, alternate=bool(alt), forced=True)
         rules.append(f".tf{alt} {{ {_css_look(c)} font-weight: 700; }}")
     rules.append(f".mark {{ color: {ts.FORCED_COLOUR}; font-weight: 700; }}")
+    rules.append(f".part {{ color: {ts.PALETTES['truecolor'].mark}; font-weight: 700; "
+                 "padding: 0 .1em; }")  # the app's parting marks, in its true-colour ink
     return "\n".join(rules)
 
 
@@ -86,7 +89,10 @@ def legend_html() -> str:
     for fi, fband in enumerate(ts.FINAL_BANDS):
         parts.append(f'<span class="t0{fi}0">{escape(fband.name)} {escape(fband.label)}</span> ')
     parts.append(f'<b>│</b> <span class="mark">{ts.FORCED_MARK}</span>'
-                 '<span class="tf0">forced</span>')
+                 '<span class="tf0">forced</span> ')
+    parts.append(f'<b>│</b> <span class="part">{ts.PART_MARK}</span> parts from the pane it is '
+                 f'compared with <span class="part">{ts.FORK_MARK}</span> forked here '
+                 f'<span class="part">{ts.EDIT_MARK}</span> recipe changed')
     return ('<div class="legend">' + "".join(parts) + "</div>"
             f'<p class="small">{escape(ts.LEGEND_TEXT)}</p>')
 
@@ -155,7 +161,15 @@ def _pane(report: Report, pane) -> Iterator[str]:
            f"{fmt(pane.mean_logprob)} · perplexity {fmt(pane.perplexity, 2)} · mean final "
            f"entropy {fmt(pane.mean('final_entropy'))} nats · mean kept "
            f"{fmt(pane.mean('kept'), 1)} · chosen by hand {pane.forced}</p>")
-    spans = "".join(_token_span(r, i % 2 == 1, p.name) for i, r in enumerate(pane.rows))
+    marks: dict[int, list[TextMark]] = {}
+    for m in report.marks(pane):
+        marks.setdefault(m.step, []).append(m)
+    spans = "".join(
+        "".join(f'<span class="part" title="{escape(m.note)}">{MARK_SIGNS[m.kind]}</span>'
+                for m in marks.get(r.step, ()))
+        + _token_span(r, i % 2 == 1, p.name) for i, r in enumerate(pane.rows))
+    if marks:
+        yield '<p class="small">' + " · ".join(map(escape, mark_lines(report.marks(pane)))) + "</p>"
     prompt = report.header.prompt_text
     shown = prompt if prompt is None or len(prompt) <= 200 else "…" + prompt[-200:]
     lead = f'<span class="prompt">{escape(visible(shown))}</span>' if shown else ""

@@ -10,8 +10,8 @@ import re
 from typing import Iterator
 
 from tui import token_style as ts
-from tui.reports.gather import (Report, fmt, origin_text, prompt_edit_lines, recipe_changes,
-                                token_cell, visible)
+from tui.reports.gather import (Report, fmt, mark_lines, origin_text, prompt_edit_lines,
+                                recipe_changes, token_cell, visible)
 
 
 def _cell(text: str) -> str:
@@ -92,6 +92,9 @@ def render_md(report: Report) -> Iterator[str]:
         changes = recipe_changes(p)
         if len(changes) > 1:
             yield "Recipe changes: " + "; ".join(changes) + "."
+        marks = mark_lines(report.marks(pane))
+        if marks:
+            yield "Marks: " + "; ".join(marks) + "."
         yield ""
         yield from _block(pane.text)
         yield ""

@@ -6,17 +6,15 @@ first pane (the baseline, usually greedy). The choice never depends on focus, so
 clicking a pane does not move its text. The marks a pane's text carries, by step: where it parts from the
 pane it is compared with, where it was forked, and where its recipe changed. Fork
 names stay readable at any depth: `greedy` forks into `greedy/1`, `greedy/2`, and
-`greedy/1` into `greedy/1.1`. No Textual, no torch.
+`greedy/1` into `greedy/1.1`. The app's panes and the reports read the same marks.
+No Textual, no torch.
 """
 
 from __future__ import annotations
 
 import re
 from dataclasses import dataclass
-from typing import Iterable, Sequence
-
-from tui.session.record import StepRecord
-from tui.session.views import PaneView
+from typing import Iterable, Protocol, Sequence
 
 PART = "part"  # the text leaves the compared pane's here
 FORK = "fork"  # the fork's own tokens start here
@@ -25,7 +23,31 @@ EDIT = "edit"  # the recipe changed from here on
 _FORK_PATH = re.compile(r"^(?P<base>.*)/(?P<path>\d+(?:\.\d+)*)$")
 
 
-def first_difference(a: Sequence[StepRecord], b: Sequence[StepRecord]) -> int | None:
+class Chosen(Protocol):
+    """A step's chosen token: a live `StepRecord`, or a report's row of one."""
+
+    @property
+    def token_id(self) -> int: ...
+
+
+class Compared(Protocol):
+    """What the marks read of a pane: a live `PaneView`, or a report's pane."""
+
+    @property
+    def id(self) -> int: ...
+    @property
+    def name(self) -> str: ...
+    @property
+    def recipe(self) -> str: ...
+    @property
+    def origin(self) -> tuple[int, int] | None: ...
+    @property
+    def recipe_log(self) -> tuple[tuple[int, str], ...]: ...
+    @property
+    def records(self) -> Sequence[Chosen]: ...
+
+
+def first_difference(a: Sequence[Chosen], b: Sequence[Chosen]) -> int | None:
     """The first step at which the two texts chose different tokens (None: the shorter
     is a prefix of the longer)."""
     for i, (x, y) in enumerate(zip(a, b)):
@@ -34,7 +56,7 @@ def first_difference(a: Sequence[StepRecord], b: Sequence[StepRecord]) -> int | 
     return None
 
 
-def compared_with(pane: PaneView, panes: Sequence[PaneView]) -> PaneView | None:
+def compared_with(pane: Compared, panes: Sequence[Compared]) -> Compared | None:
     """The pane `pane` is compared with: fork source, twin, or the first pane."""
     others = [p for p in panes if p.id != pane.id]
     if pane.origin is not None:
@@ -56,7 +78,7 @@ class TextMark:
     note: str  # what it means, for a tooltip or a report
 
 
-def text_marks(pane: PaneView, compared: PaneView | None) -> tuple[TextMark, ...]:
+def text_marks(pane: Compared, compared: Compared | None) -> tuple[TextMark, ...]:
     """The marks of `pane`'s text, in step order."""
     marks: list[TextMark] = []
     fork_step = pane.origin[1] if pane.origin is not None else None
