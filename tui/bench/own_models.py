@@ -127,6 +127,7 @@ def measure_one(folder: Path, dtype: str, steps: int) -> dict[str, Any]:
 
     from tui.model.catalogue import load_model
 
+    before = psutil.Process().memory_info().rss  # the interpreter with torch, before the model
     started = time.perf_counter()
     lm = load_model(str(folder), dtype=dtype)
     runner = lm.runner()
@@ -134,7 +135,7 @@ def measure_one(folder: Path, dtype: str, steps: int) -> dict[str, Any]:
     vocab = runner.vocab_size
     ctx = [(7 * i + 3) % vocab for i in range(CONTEXT)]
     out: dict[str, Any] = {"path": lm.path_note, "weights": lm.weights_bytes, "load_s": load_s,
-                           "step_s": {}, "threads": torch.get_num_threads()}
+                           "step_s": {}, "threads": torch.get_num_threads(), "rss_before": before}
     kv0, _ = runner.prefill([ctx])
     for panes in PANES:
         kv = kv0.select([0] * panes)
@@ -191,7 +192,9 @@ def own_model_rows(quick: bool, keep: bool = True) -> list[Row]:
                 Row("own models", f"{tag}: 1 pane / bfloat16 floor", f"{one / floor16:.2f}x",
                     f"bfloat16 floor {ms(floor16)}", "<= 1.5x", verdict(one / floor16 <= 1.5)),
                 Row("own models", f"{tag}: RSS / weights", f"{got['rss'] / weights:.2f}x",
-                    f"RSS {got['rss'] / 1e9:.2f} GB, weights {weights / 1e9:.2f} GB", "<= 1.3x",
+                    f"RSS {got['rss'] / 1e9:.2f} GB, weights {weights / 1e9:.2f} GB; "
+                    f"{got['rss_before'] / 1e9:.2f} GB before the model (Python, torch), "
+                    f"{(got['rss'] - got['rss_before']) / weights:.2f}x above that", "<= 1.3x",
                     verdict(got["rss"] / weights <= 1.3)),
             ]
         if name == "llama-1b":
