@@ -24,9 +24,9 @@ from tui.model.llama_checkpoint import parameter_count, read_checkpoint, weight_
 from tui.settings import settings
 
 try:
-    from tiny_model import build_tiny_qwen2_model
+    from tiny_model import build_tiny_gguf, build_tiny_qwen2_model
 except ImportError:
-    from tests.tiny_model import build_tiny_qwen2_model
+    from tests.tiny_model import build_tiny_gguf, build_tiny_qwen2_model
 
 TOL = 1e-4  # the project's parity tolerance, in logits
 TEXT = "Zoë ordered tea at the 北 quay 🙂"
@@ -246,6 +246,32 @@ def test_the_top_bar_shows_the_dtype_and_the_time_to_the_end():
     # worked by hand: 90 steps at 0.5 steps/s take 180 s, shown as 3 min
     assert "m bfloat16 (auto)" in text and "0.5 steps/s (3 min to the end)" in text
     assert (time_text(40), time_text(3725)) == ("40 s", "1 h 2 min")
+
+
+def test_a_qwen2_gguf_streams_to_what_transformers_whole_load_gives(qwen_dir, tmp_path):
+    import json
+
+    from safetensors.torch import load_file
+
+    from tui.model import conversion_cache as model_cache
+    from tui.progress import no_progress
+
+    gguf_file = build_tiny_gguf(qwen_dir, tmp_path / "qwen.gguf")  # untied, with q/k/v biases
+    # reference: transformers 5.24.0's GGUF loader, the whole model at once
+    whole, streamed = tmp_path / "whole", tmp_path / "streamed"
+    for folder, stream in ((whole, False), (streamed, None)):
+        folder.mkdir()
+        model_cache.write_conversion(gguf_file, folder, no_progress, stream=stream)
+    a, b = (load_file(str(f / model_cache.WEIGHTS)) for f in (whole, streamed))
+    assert sorted(a) == sorted(b) and "lm_head.weight" in b and any(k.endswith(".bias") for k in b)
+    assert all(torch.equal(a[k], b[k]) for k in a)
+    for name in ("config.json", "generation_config.json"):
+        assert json.loads((whole / name).read_text()) == json.loads((streamed / name).read_text())
+    # an F32 GGUF is lossless: the streamed cache gives the source folder's logits
+    lm = load_model(str(gguf_file))
+    ids = [3, 4, 5, 6, 7]
+    assert torch.allclose(lm.runner().prefill([ids])[1][0], transformers_logits(qwen_dir, ids)[-1],
+                          atol=1e-4)
 
 
 def test_a_sweep_batch_is_chosen_from_free_memory(qwen_dir):

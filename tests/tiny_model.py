@@ -135,12 +135,11 @@ def build_tiny_qwen2_model(path: str | Path, max_shard_size: str | None = None) 
 
 
 def build_tiny_gguf(model_dir: str | Path, path: str | Path) -> Path:
-    """Write the tiny llama in `model_dir` as an F32 GGUF file at `path`; return it
-    (`tui.bench.gguf_writer`, the way llama.cpp lays one out)."""
-    from tui.bench.gguf_writer import write_llama_gguf
+    """Write the tiny llama (or qwen2) in `model_dir` as an F32 GGUF file at `path`;
+    return it (`tui.bench.gguf_writer`, the way llama.cpp lays one out)."""
+    from tui.bench.gguf_writer import write_gguf
 
-    return write_llama_gguf(Path(model_dir), Path(path), chat_template=CHAT_TEMPLATE,
-                            name="tiny-llama")
+    return write_gguf(Path(model_dir), Path(path), chat_template=CHAT_TEMPLATE, name="tiny")
 
 
 # ------------------------------------------------- bare models for the forward-path tests

@@ -1,11 +1,12 @@
-"""Writing a llama safetensors folder as a GGUF file, laid out the way llama.cpp lays one out.
+"""Writing a llama or qwen2 safetensors folder as a GGUF file, laid out the way llama.cpp does.
 
 The benchmark converts a 1B-shape GGUF to measure the conversion's memory, and the
 tests convert a tiny one; no GGUF of either exists to download, so both are written
 here from a folder (one `model.safetensors` or shards) with gguf's own `GGUFWriter`.
-Tensor names come from gguf's name table; q and k rows are permuted as llama.cpp's
-converter does (reference: llama.cpp convert_hf_to_gguf.py, LlamaModel.permute;
-transformers' LlamaTensorProcessor._reverse_permute_weights undoes it); the tokenizer
+Tensor names come from gguf's name table; for llama, q and k rows are permuted as
+llama.cpp's converter does (reference: llama.cpp convert_hf_to_gguf.py,
+LlamaModel.permute; transformers' LlamaTensorProcessor._reverse_permute_weights undoes
+it), while qwen2 keeps them as they are (its converter does not permute); the tokenizer
 goes in as a "gpt2" (byte-level BPE) vocabulary with its merges. A tied model has no
 `output.weight`, which is how a GGUF says tie_word_embeddings.
 """
@@ -23,10 +24,13 @@ def llama_cpp_permute(weight: Any, n_head: int) -> Any:
     return weight.reshape(n_head, 2, rows // n_head // 2, *weight.shape[1:]).swapaxes(1, 2).reshape(weight.shape)
 
 
-def write_llama_gguf(folder: Path, path: Path, *, chat_template: str, half: bool = False,
-                     name: str = "logitfork-llama") -> Path:
-    """Write the llama in `folder` to the GGUF file `path` (F32, or F16 matrices with
-    `half`); return `path`."""
+ARCHES = {"llama": "LLAMA", "qwen2": "QWEN2"}  # config model_type -> gguf.MODEL_ARCH member
+
+
+def write_gguf(folder: Path, path: Path, *, chat_template: str, half: bool = False,
+               name: str = "logitfork-model") -> Path:
+    """Write the llama or qwen2 model in `folder` to the GGUF file `path` (F32, or F16
+    matrices with `half`); return `path`."""
     import gguf
     import numpy as np
     from safetensors.torch import load_file
@@ -35,7 +39,10 @@ def write_llama_gguf(folder: Path, path: Path, *, chat_template: str, half: bool
 
     config = json.loads((folder / "config.json").read_text(encoding="utf-8"))
     tok = json.loads((folder / "tokenizer.json").read_text(encoding="utf-8"))
-    writer = gguf.GGUFWriter(str(path), arch="llama")
+    arch = config["model_type"]
+    if arch not in ARCHES:
+        raise ValueError(f"{folder}: model_type {arch!r}; llama and qwen2 are written")
+    writer = gguf.GGUFWriter(str(path), arch=arch)
     writer.add_name(name)
     writer.add_context_length(config["max_position_embeddings"])
     writer.add_embedding_length(config["hidden_size"])
@@ -64,16 +71,18 @@ def write_llama_gguf(folder: Path, path: Path, *, chat_template: str, half: bool
     writer.add_pad_token_id(eos[0] if isinstance(eos, list) else eos)
     writer.add_chat_template(chat_template)
 
-    table = gguf.get_tensor_name_map(gguf.MODEL_ARCH.LLAMA, config["num_hidden_layers"])
+    table = gguf.get_tensor_name_map(getattr(gguf.MODEL_ARCH, ARCHES[arch]),
+                                     config["num_hidden_layers"])
+    permute = arch == "llama"
     n_head, n_kv = config["num_attention_heads"], config["num_key_value_heads"]
     for file in sorted(set(weight_files(folder).values())):
         for hf_name, tensor in load_file(str(file)).items():
             if hf_name == "lm_head.weight" and config.get("tie_word_embeddings", False):
                 continue
             array = tensor.float().numpy()
-            if hf_name.endswith("q_proj.weight"):
+            if permute and hf_name.endswith("q_proj.weight"):
                 array = llama_cpp_permute(array, n_head)
-            elif hf_name.endswith("k_proj.weight"):
+            elif permute and hf_name.endswith("k_proj.weight"):
                 array = llama_cpp_permute(array, n_kv)
             if half and array.ndim == 2:
                 array = array.astype(np.float16)

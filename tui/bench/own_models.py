@@ -209,7 +209,7 @@ def conversion_rows(folder: Path, root: Path, tokenizer_folder: Path) -> list[Ro
     """The 1B shape written as an F16 GGUF, converted streamed and whole in fresh processes:
     peak resident memory and time of each (`tui.model.gguf_stream` against transformers'
     whole-model load). Peak RSS counts the memory-mapped GGUF's pages in both."""
-    from tui.bench.gguf_writer import write_llama_gguf
+    from tui.bench.gguf_writer import write_gguf
     from tui.model.gguf_file import read_table
     from tui.model.gguf_stream import peak_bytes
 
@@ -218,7 +218,7 @@ def conversion_rows(folder: Path, root: Path, tokenizer_folder: Path) -> list[Ro
         jinja = tokenizer_folder / "chat_template.jinja"
         template = (jinja.read_text(encoding="utf-8") if jinja.is_file() else json.loads(
             (tokenizer_folder / "tokenizer_config.json").read_text())["chat_template"])
-        temp = write_llama_gguf(folder, gguf_file.with_suffix(".tmp"), chat_template=template,
+        temp = write_gguf(folder, gguf_file.with_suffix(".tmp"), chat_template=template,
                                 half=True, name=f"bench-{folder.name}")
         temp.rename(gguf_file)
     table = read_table(gguf_file)

@@ -10,8 +10,9 @@ architecture's `TensorProcessor`; then it de-quantises each tensor with the `ggu
 package, applies the processor (the q/k row permutation for llama), and writes
 float32 safetensors shards of at most `SHARD_BYTES`. That is the loop of
 `transformers.modeling_gguf_pytorch_utils.load_gguf_checkpoint` (5.24), run as a
-stream; `tests/test_models.py` holds its output to the whole-model path's, bit for
-bit, on a float32 GGUF and on the embedded Q4_1 one.
+stream; `tests/test_models.py` and `tests/test_own_models.py` hold its output to the
+whole-model path's, bit for bit, on float32 llama and qwen2 GGUFs and on the embedded
+Q4_1 one.
 
 Peak memory: one shard plus a few copies of the largest tensor (`peak_bytes`), and the
 pages of the memory-mapped GGUF file, which the system can take back at any time.
