@@ -82,6 +82,27 @@ def test_generate_samples_from_the_recipes_distribution(model, text: str) -> Non
             sampler.observe(token, ours)  # refuses a token outside our kept set
 
 
+def test_a_tiny_temperature_runs_in_generate_as_it_does_here(model) -> None:
+    # logits / 1e-300 leave float32's range: transformers' TemperatureLogitsWarper alone
+    # would give inf scores and generate() would fail on them; the exported processor
+    # shifts the top logit to 0 first, as our stage does (softmax ignores a shift)
+    for text in ("temperature=1e-300", "repetition_penalty=1.3 temperature=1e-300 top_k=40"):
+        recipe = Recipe.parse(text)
+        out = run_generate(model, recipe, seed=3)
+        start = PROMPTS.shape[1]
+        for row in range(PROMPTS.shape[0]):
+            for step in range(STEPS):
+                history = out.sequences[row, : start + step].numpy()
+                ours = recipe.distribution(out.logits[step][row].numpy(), history)
+                theirs = torch.softmax(out.scores[step][row].double(), dim=-1).numpy()
+                np.testing.assert_allclose(theirs, ours, rtol=0, atol=1e-6)
+                assert int(out.sequences[row, start + step]) == int(np.argmax(ours))  # greedy-like
+    # where the quotients fit, transformers' own warper runs, unchanged
+    processor = Recipe.parse("temperature=0.5").as_logits_processor()[0]
+    scores = torch.tensor([[1.0, -2.0, 3.0]])
+    assert torch.equal(processor(torch.tensor([[0]]), scores.clone()), scores / 0.5)
+
+
 def test_the_model_defaults_would_leak_in_without_it(model) -> None:
     # the failure generate_kwargs() prevents: the README's old call, a custom list alone,
     # lets transformers add the model's top_k=5 (and the rest) after the recipe

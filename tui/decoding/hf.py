@@ -14,7 +14,9 @@ RepetitionPenaltyLogitsProcessor) and our stages, wrapped, for the rest: where
 transformers has none (greedy, presence and frequency penalties, mirostat) and where
 its rule differs (top_p ties, epsilon and eta at the threshold, and a no_repeat_ngram
 ban that would leave no token, where NoRepeatNGramLogitsProcessor leaves every score
-at -inf and generate() fails; see the stage docstrings).
+at -inf and generate() fails; see the stage docstrings). The temperature warper is
+guarded (`TemperatureProcessor`): a T so small that its quotients overflow float32
+would make generate() fail, so there the top logit is subtracted first, as ours does.
 
 `to_generation_config` maps what GenerationConfig's fields can say. It cannot say
 the stages it has no field for, nor an order other than transformers' fixed one;
@@ -123,10 +125,32 @@ class MirostatLogitsProcessor(LogitsProcessor):
         return torch.stack(rows)
 
 
+class TemperatureProcessor(LogitsProcessor):
+    """Temperature inside generate(): transformers' TemperatureLogitsWarper, unless its
+    quotients would leave the range of the scores' dtype (float32: a T of about 1e-35
+    and less for logits in the tens), where it would give inf scores and generate()
+    would fail. Then the top logit of each row is subtracted first, in float64, as our
+    `Temperature` does: the same distribution (softmax ignores a shift), the top token
+    at 0 and the others at or below it, so a tiny T tends to greedy with ties kept."""
+
+    def __init__(self, stage: Temperature) -> None:
+        self.value = stage.value
+        self._warper = TemperatureLogitsWarper(stage.value)
+
+    def __call__(self, input_ids: torch.LongTensor, scores: torch.FloatTensor) -> torch.FloatTensor:
+        finite = scores[torch.isfinite(scores)]
+        top = float(finite.abs().max()) if finite.numel() else 0.0
+        if top / self.value < torch.finfo(scores.dtype).max:
+            return self._warper(input_ids, scores)
+        wide = scores.to(torch.float64)
+        shifted = (wide - wide.max(dim=-1, keepdim=True).values) / self.value
+        return shifted.to(scores.dtype)  # below the dtype's range: -inf, probability 0
+
+
 def processor_for(stage: Stage) -> LogitsProcessor | None:
     """The processor doing `stage` inside generate(); None when the stage changes nothing."""
     if isinstance(stage, Temperature):
-        return TemperatureLogitsWarper(stage.value) if stage.value != 1.0 else None
+        return TemperatureProcessor(stage) if stage.value != 1.0 else None
     if isinstance(stage, TopK):
         return TopKLogitsWarper(stage.k) if stage.k > 0 else None
     if isinstance(stage, MinP):
