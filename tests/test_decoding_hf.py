@@ -18,8 +18,8 @@ from transformers import (GenerationConfig, LlamaConfig, LlamaForCausalLM, Logit
                           TemperatureLogitsWarper, TopKLogitsWarper)
 
 from tui.decoding import Recipe
-from tui.decoding.hf import (MirostatLogitsProcessor, RecipeWarning, StageLogitsProcessor,
-                             TemperatureProcessor)
+from tui.decoding.hf import (MirostatLogitsProcessor, RecipeWarning, RepetitionPenaltyProcessor,
+                             StageLogitsProcessor, TemperatureProcessor)
 
 
 class Recorder(LogitsProcessor):
@@ -83,11 +83,14 @@ def test_generate_keeps_the_same_sets_as_our_chain(tiny_model: LlamaForCausalLM,
 def test_processors_are_transformers_own_where_the_rules_agree() -> None:
     kinds = [type(p) for p in Recipe.parse(
         "repetition_penalty=1.2 temperature=0.7 top_k=20 min_p=0.1 top_p=0.9 greedy").as_logits_processor()]
-    assert kinds == [RepetitionPenaltyLogitsProcessor, TemperatureProcessor, TopKLogitsWarper,
+    assert kinds == [RepetitionPenaltyProcessor, TemperatureProcessor, TopKLogitsWarper,
                      MinPLogitsWarper, StageLogitsProcessor, StageLogitsProcessor]
-    # temperature is transformers' warper, guarded only against leaving float32's range
+    # temperature and the repetition penalty are transformers' own, guarded only against
+    # leaving float32's range (test_generate_kwargs.py)
     assert isinstance(Recipe.parse("temperature=0.7").as_logits_processor()[0]._warper,
                       TemperatureLogitsWarper)
+    assert isinstance(Recipe.parse("repetition_penalty=1.2").as_logits_processor()[0]._processor,
+                      RepetitionPenaltyLogitsProcessor)
     assert [type(p) for p in Recipe.parse("mirostat=4 top_k=0 temperature=1").as_logits_processor()] == [
         MirostatLogitsProcessor
     ]  # stages that change nothing are left out

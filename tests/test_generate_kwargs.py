@@ -97,6 +97,17 @@ def test_a_tiny_temperature_runs_in_generate_as_it_does_here(model) -> None:
                 theirs = torch.softmax(out.scores[step][row].double(), dim=-1).numpy()
                 np.testing.assert_allclose(theirs, ours, rtol=0, atol=1e-6)
                 assert int(out.sequences[row, start + step]) == int(np.argmax(ours))  # greedy-like
+    # penalties that push a repeated token's score past float32's range: it wins, as here
+    for text in ("repetition_penalty=1e-40", "presence_penalty=-1e39 top_k=5"):
+        recipe = Recipe.parse(text)
+        out = run_generate(model, recipe, seed=5)
+        start = PROMPTS.shape[1]
+        for row in range(PROMPTS.shape[0]):
+            for step in range(STEPS):
+                history = out.sequences[row, : start + step].numpy()
+                ours = recipe.distribution(out.logits[step][row].numpy(), history)
+                theirs = torch.softmax(out.scores[step][row].double(), dim=-1).numpy()
+                np.testing.assert_allclose(theirs, ours, rtol=0, atol=1e-6, err_msg=text)
     # where the quotients fit, transformers' own warper runs, unchanged
     processor = Recipe.parse("temperature=0.5").as_logits_processor()[0]
     scores = torch.tensor([[1.0, -2.0, 3.0]])

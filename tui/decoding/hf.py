@@ -14,9 +14,11 @@ RepetitionPenaltyLogitsProcessor) and our stages, wrapped, for the rest: where
 transformers has none (greedy, presence and frequency penalties, mirostat) and where
 its rule differs (top_p ties, epsilon and eta at the threshold, and a no_repeat_ngram
 ban that would leave no token, where NoRepeatNGramLogitsProcessor leaves every score
-at -inf and generate() fails; see the stage docstrings). The temperature warper is
-guarded (`TemperatureProcessor`): a T so small that its quotients overflow float32
-would make generate() fail, so there the top logit is subtracted first, as ours does.
+at -inf and generate() fails; see the stage docstrings). Temperature and the
+repetition penalty are guarded (`TemperatureProcessor`, `RepetitionPenaltyProcessor`):
+where transformers' rule would push a score past float32's range, generate() would
+fail on the inf, so there the row is shifted to a top of 0 (softmax ignores a shift),
+as our stages' rows are whenever they come back past the scores' range.
 
 `to_generation_config` maps what GenerationConfig's fields can say. It cannot say
 the stages it has no field for, nor an order other than transformers' fixed one;
@@ -64,8 +66,15 @@ def _row_history(ids_row: torch.Tensor, vocab_size: int) -> History:
 
 
 def _row_scores(cands: Candidates, like: torch.Tensor) -> torch.Tensor:
+    """The row back in `like`'s dtype. Our stages keep logits within +-1e307 in float64;
+    where the top one is past the dtype's range (float32: 3.4e38), the row is shifted so
+    that it is 0 (softmax ignores a shift), so no score becomes +inf and generate()
+    does not fail; scores below the range become -inf, which had probability 0 anyway."""
     out = np.full(cands.vocab_size, -math.inf)
     out[cands.ids] = cands.logits
+    top = out.max()
+    if np.isfinite(top) and top > torch.finfo(like.dtype).max:
+        out -= top
     return torch.from_numpy(out).to(dtype=like.dtype, device=like.device)
 
 
@@ -147,6 +156,24 @@ class TemperatureProcessor(LogitsProcessor):
         return shifted.to(scores.dtype)  # below the dtype's range: -inf, probability 0
 
 
+class RepetitionPenaltyProcessor(LogitsProcessor):
+    """The repetition penalty inside generate(): transformers' processor, unless a theta
+    below 1 would push a repeated token's positive score past the dtype's range (inf:
+    generate() would fail); then our stage, whose row comes back shifted (`_row_scores`)."""
+
+    def __init__(self, stage: RepetitionPenalty) -> None:
+        self.theta = stage.theta
+        self._processor = RepetitionPenaltyLogitsProcessor(stage.theta)
+        self._ours = StageLogitsProcessor(stage)
+
+    def __call__(self, input_ids: torch.LongTensor, scores: torch.FloatTensor) -> torch.FloatTensor:
+        finite = scores[torch.isfinite(scores)]
+        top = float(finite.max()) if finite.numel() else 0.0
+        if self.theta >= 1.0 or top / self.theta < torch.finfo(scores.dtype).max:
+            return self._processor(input_ids, scores)
+        return self._ours(input_ids, scores)
+
+
 def processor_for(stage: Stage) -> LogitsProcessor | None:
     """The processor doing `stage` inside generate(); None when the stage changes nothing."""
     if isinstance(stage, Temperature):
@@ -158,7 +185,7 @@ def processor_for(stage: Stage) -> LogitsProcessor | None:
     if isinstance(stage, TypicalP):
         return TypicalLogitsWarper(stage.mass) if stage.mass < 1 else None
     if isinstance(stage, RepetitionPenalty):
-        return RepetitionPenaltyLogitsProcessor(stage.theta) if stage.theta != 1.0 else None
+        return RepetitionPenaltyProcessor(stage) if stage.theta != 1.0 else None
     if isinstance(stage, NoRepeatNGram) and stage.n == 0:
         return None
     if isinstance(stage, MirostatV2):
