@@ -65,6 +65,15 @@ def test_the_whole_distribution_matches_numpy_by_hand():
     assert [r.rank for r in dist.search("<0", lambda t: f"<{t}>")] == [4]
 
 
+async def inspected(app, pilot, pane_id: int, step: int) -> InspectScreen:
+    """Open the inspect view on a step once the panes are up; wait for its analysis."""
+    await wait_until(pilot, lambda: app.grid.panes())
+    app.open_inspect(pane_id, step)
+    await wait_until(pilot, lambda: isinstance(app.screen, InspectScreen)
+                     and app.screen.analysed, what="the inspect view")
+    return app.screen
+
+
 async def test_a_chosen_token_at_rank_80_is_findable_and_the_cursor_starts_on_it(lm):
     source = live_source(lm)
     engine = source.engine
@@ -79,11 +88,7 @@ async def test_a_chosen_token_at_rank_80_is_findable_and_the_cursor_starts_on_it
 
     app = make_app(source=source)
     async with app.run_test(size=(120, 40)) as pilot:
-        await wait_until(pilot, lambda: app.grid.panes())
-        app.open_inspect(pane.id, 0)
-        await wait_until(pilot, lambda: isinstance(app.screen, InspectScreen)
-                         and app.screen.analysed, what="the inspect view")
-        screen = app.screen
+        screen = await inspected(app, pilot, pane.id, 0)
         table = screen.query_one("#top-table", DataTable)
         assert screen.rows[table.cursor_row].token_id == far  # the cursor on the chosen row
         assert screen.rows[table.cursor_row].rank == 80
@@ -150,9 +155,6 @@ async def test_an_old_step_costs_one_forward_pass_to_inspect(lm):
 
     app = make_app(source=source)
     async with app.run_test(size=(120, 40)) as pilot:
-        await wait_until(pilot, lambda: app.grid.panes())
-        app.open_inspect(pane.id, 0)
-        await wait_until(pilot, lambda: isinstance(app.screen, InspectScreen)
-                         and app.screen.analysed, what="the inspect view")
-        assert app.screen.dist is not None and app.screen.dist.complete
+        screen = await inspected(app, pilot, pane.id, 0)
+        assert screen.dist is not None and screen.dist.complete
     assert calls == [len(engine.prompt_ids)]  # the prompt alone: step 0, recomputed once

@@ -87,9 +87,9 @@ def test_processors_are_transformers_own_where_the_rules_agree() -> None:
                      MinPLogitsWarper, StageLogitsProcessor, StageLogitsProcessor]
     # temperature and the repetition penalty are transformers' own, guarded only against
     # leaving float32's range (test_generate_kwargs.py)
-    assert isinstance(Recipe.parse("temperature=0.7").as_logits_processor()[0]._warper,
+    assert isinstance(Recipe.parse("temperature=0.7").as_logits_processor()[0].theirs,
                       TemperatureLogitsWarper)
-    assert isinstance(Recipe.parse("repetition_penalty=1.2").as_logits_processor()[0]._processor,
+    assert isinstance(Recipe.parse("repetition_penalty=1.2").as_logits_processor()[0].theirs,
                       RepetitionPenaltyLogitsProcessor)
     assert [type(p) for p in Recipe.parse("mirostat=4 top_k=0 temperature=1").as_logits_processor()] == [
         MirostatLogitsProcessor

@@ -82,32 +82,32 @@ def test_generate_samples_from_the_recipes_distribution(model, text: str) -> Non
             sampler.observe(token, ours)  # refuses a token outside our kept set
 
 
+def generate_matches_ours(model, recipe: Recipe, seed: int) -> list[tuple[int, np.ndarray]]:
+    """Run generate() with the recipe; assert each step's distribution is ours (1e-6);
+    return (the token it chose, our distribution) for every row and step."""
+    out = run_generate(model, recipe, seed=seed)
+    start = PROMPTS.shape[1]
+    steps = []
+    for row in range(PROMPTS.shape[0]):
+        for step in range(STEPS):
+            history = out.sequences[row, : start + step].numpy()
+            ours = recipe.distribution(out.logits[step][row].numpy(), history)
+            theirs = torch.softmax(out.scores[step][row].double(), dim=-1).numpy()
+            np.testing.assert_allclose(theirs, ours, rtol=0, atol=1e-6, err_msg=str(recipe))
+            steps.append((int(out.sequences[row, start + step]), ours))
+    return steps
+
+
 def test_a_tiny_temperature_runs_in_generate_as_it_does_here(model) -> None:
     # logits / 1e-300 leave float32's range: transformers' TemperatureLogitsWarper alone
     # would give inf scores and generate() would fail on them; the exported processor
     # shifts the top logit to 0 first, as our stage does (softmax ignores a shift)
     for text in ("temperature=1e-300", "repetition_penalty=1.3 temperature=1e-300 top_k=40"):
-        recipe = Recipe.parse(text)
-        out = run_generate(model, recipe, seed=3)
-        start = PROMPTS.shape[1]
-        for row in range(PROMPTS.shape[0]):
-            for step in range(STEPS):
-                history = out.sequences[row, : start + step].numpy()
-                ours = recipe.distribution(out.logits[step][row].numpy(), history)
-                theirs = torch.softmax(out.scores[step][row].double(), dim=-1).numpy()
-                np.testing.assert_allclose(theirs, ours, rtol=0, atol=1e-6)
-                assert int(out.sequences[row, start + step]) == int(np.argmax(ours))  # greedy-like
+        for token, ours in generate_matches_ours(model, Recipe.parse(text), seed=3):
+            assert token == int(np.argmax(ours))  # greedy-like
     # penalties that push a repeated token's score past float32's range: it wins, as here
     for text in ("repetition_penalty=1e-40", "presence_penalty=-1e39 top_k=5"):
-        recipe = Recipe.parse(text)
-        out = run_generate(model, recipe, seed=5)
-        start = PROMPTS.shape[1]
-        for row in range(PROMPTS.shape[0]):
-            for step in range(STEPS):
-                history = out.sequences[row, : start + step].numpy()
-                ours = recipe.distribution(out.logits[step][row].numpy(), history)
-                theirs = torch.softmax(out.scores[step][row].double(), dim=-1).numpy()
-                np.testing.assert_allclose(theirs, ours, rtol=0, atol=1e-6, err_msg=text)
+        generate_matches_ours(model, Recipe.parse(text), seed=5)
     # where the quotients fit, transformers' own warper runs, unchanged
     processor = Recipe.parse("temperature=0.5").as_logits_processor()[0]
     scores = torch.tensor([[1.0, -2.0, 3.0]])

@@ -15,10 +15,10 @@ transformers has none (greedy, presence and frequency penalties, mirostat) and w
 its rule differs (top_p ties, epsilon and eta at the threshold, and a no_repeat_ngram
 ban that would leave no token, where NoRepeatNGramLogitsProcessor leaves every score
 at -inf and generate() fails; see the stage docstrings). Temperature and the
-repetition penalty are guarded (`TemperatureProcessor`, `RepetitionPenaltyProcessor`):
-where transformers' rule would push a score past float32's range, generate() would
-fail on the inf, so there the row is shifted to a top of 0 (softmax ignores a shift),
-as our stages' rows are whenever they come back past the scores' range.
+repetition penalty are guarded (`RangeGuarded`): where transformers' rule would push a
+score past float32's range, generate() would fail on the inf, so there our stage runs,
+and its row is shifted to a top of 0 (softmax ignores a shift), as every row of our
+stages is whenever it comes back past the scores' range.
 
 `to_generation_config` maps what GenerationConfig's fields can say. It cannot say
 the stages it has no field for, nor an order other than transformers' fixed one;
@@ -134,44 +134,42 @@ class MirostatLogitsProcessor(LogitsProcessor):
         return torch.stack(rows)
 
 
-class TemperatureProcessor(LogitsProcessor):
-    """Temperature inside generate(): transformers' TemperatureLogitsWarper, unless its
-    quotients would leave the range of the scores' dtype (float32: a T of about 1e-35
-    and less for logits in the tens), where it would give inf scores and generate()
-    would fail. Then the top logit of each row is subtracted first, in float64, as our
-    `Temperature` does: the same distribution (softmax ignores a shift), the top token
-    at 0 and the others at or below it, so a tiny T tends to greedy with ties kept."""
+class RangeGuarded(LogitsProcessor):
+    """transformers' own processor for a stage (`theirs`), unless on these scores its
+    result could leave the range of the scores' dtype: it can multiply a score's size by
+    `growth`, and past float32's 3.4e38 the score is inf and generate() fails. Then our
+    stage runs instead, whose row comes back shifted to a top of 0 (`_row_scores`)."""
 
-    def __init__(self, stage: Temperature) -> None:
-        self.value = stage.value
-        self._warper = TemperatureLogitsWarper(stage.value)
-
-    def __call__(self, input_ids: torch.LongTensor, scores: torch.FloatTensor) -> torch.FloatTensor:
-        finite = scores[torch.isfinite(scores)]
-        top = float(finite.abs().max()) if finite.numel() else 0.0
-        if top / self.value < torch.finfo(scores.dtype).max:
-            return self._warper(input_ids, scores)
-        wide = scores.to(torch.float64)
-        shifted = (wide - wide.max(dim=-1, keepdim=True).values) / self.value
-        return shifted.to(scores.dtype)  # below the dtype's range: -inf, probability 0
-
-
-class RepetitionPenaltyProcessor(LogitsProcessor):
-    """The repetition penalty inside generate(): transformers' processor, unless a theta
-    below 1 would push a repeated token's positive score past the dtype's range (inf:
-    generate() would fail); then our stage, whose row comes back shifted (`_row_scores`)."""
-
-    def __init__(self, stage: RepetitionPenalty) -> None:
-        self.theta = stage.theta
-        self._processor = RepetitionPenaltyLogitsProcessor(stage.theta)
+    def __init__(self, stage: Stage, theirs: LogitsProcessor, growth: float) -> None:
+        self.theirs = theirs
+        self.growth = growth
         self._ours = StageLogitsProcessor(stage)
 
     def __call__(self, input_ids: torch.LongTensor, scores: torch.FloatTensor) -> torch.FloatTensor:
-        finite = scores[torch.isfinite(scores)]
-        top = float(finite.max()) if finite.numel() else 0.0
-        if self.theta >= 1.0 or top / self.theta < torch.finfo(scores.dtype).max:
-            return self._processor(input_ids, scores)
-        return self._ours(input_ids, scores)
+        if self.growth > 1.0:
+            finite = scores[torch.isfinite(scores)]
+            top = float(finite.abs().max()) if finite.numel() else 0.0
+            if top * self.growth >= torch.finfo(scores.dtype).max:
+                return self._ours(input_ids, scores)
+        return self.theirs(input_ids, scores)
+
+
+class TemperatureProcessor(RangeGuarded):
+    """TemperatureLogitsWarper, guarded: a T of about 1e-35 and less overflows float32
+    for logits in the tens; our `Temperature` then tends to greedy with ties kept."""
+
+    def __init__(self, stage: Temperature) -> None:
+        super().__init__(stage, TemperatureLogitsWarper(stage.value), 1.0 / stage.value)
+
+
+class RepetitionPenaltyProcessor(RangeGuarded):
+    """RepetitionPenaltyLogitsProcessor, guarded: a theta below 1 divides a repeated
+    token's positive score by theta (a theta above 1 only shrinks positive scores and
+    sends negative ones toward -inf, where their probability is 0 anyway)."""
+
+    def __init__(self, stage: RepetitionPenalty) -> None:
+        super().__init__(stage, RepetitionPenaltyLogitsProcessor(stage.theta),
+                         1.0 / stage.theta if stage.theta < 1.0 else 1.0)
 
 
 def processor_for(stage: Stage) -> LogitsProcessor | None:
